@@ -1,0 +1,294 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""One HDF5 file per product, written atomically, read through :class:`ProductView`.
+
+Layout: ``WORK/<stage>/<label>.<key>.h5``. A product is written under a
+temporary name in the same directory, flushed, its ``complete`` attribute set
+last, then renamed with ``os.replace``: a file with the final name and
+``complete = True`` is trusted, anything else is not. A unit that fails leaves
+``WORK/<stage>/<label>.<key>.failed.json`` with the message instead.
+
+Datasets carry ``axes`` (JSON list) and ``unit`` attributes; large ones are
+chunked and compressed; complex arrays are stored natively; numpy structured
+arrays are tables (unicode fields stored as UTF-8 bytes and restored on read);
+dask arrays are written chunk by chunk.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import threading
+import uuid
+from datetime import datetime, timezone
+from pathlib import Path
+
+import h5py
+import numpy as np
+
+from .stage import Array
+
+__all__ = ["ProductView", "product_path", "failure_path", "write_product", "write_failure",
+           "read_failure", "is_complete", "products_of"]
+
+_COMPRESS_ABOVE = 1 << 16       # elements; smaller datasets are stored contiguous
+_H5_LOCK = threading.RLock()    # short reads; h5py itself serialises library calls
+
+
+def product_path(workdir, stage: str, label: str, key: str) -> Path:
+    return Path(workdir) / stage / f"{label}.{key}.h5"
+
+
+def failure_path(workdir, stage: str, label: str, key: str) -> Path:
+    return Path(workdir) / stage / f"{label}.{key}.failed.json"
+
+
+def products_of(workdir, stage: str, label: str) -> list[Path]:
+    """Every complete-named product file of (stage, label), whatever its key."""
+    d = Path(workdir) / stage
+    if not d.is_dir():
+        return []
+    return sorted(p for p in d.glob(f"{label}.*.h5")
+                  if p.name.count(".") == label.count(".") + 2)
+
+
+def is_complete(path) -> bool:
+    """True when ``path`` exists, opens as HDF5 and has ``complete = True``."""
+    path = Path(path)
+    if not path.is_file():
+        return False
+    try:
+        with _H5_LOCK, h5py.File(path, "r") as f:
+            return bool(f.attrs.get("complete", False))
+    except (OSError, KeyError):
+        return False
+
+
+def _is_dask(x) -> bool:
+    return type(x).__module__.startswith("dask.array") and hasattr(x, "chunks")
+
+
+def _encode_table(data: np.ndarray):
+    """Structured array -> (h5-storable array, names of unicode fields)."""
+    fields, unicode = [], []
+    for name in data.dtype.names:
+        dt = data.dtype[name]
+        if dt.kind == "U":
+            unicode.append(name)
+            width = max(1, max((len(s.encode()) for s in data[name].ravel()), default=1))
+            fields.append((name, f"S{width}"))
+        elif dt.kind == "O":
+            raise TypeError(f"table field {name!r} has object dtype; use str or numbers")
+        else:
+            fields.append((name, dt))
+    out = np.empty(data.shape, dtype=fields)
+    for name in data.dtype.names:
+        out[name] = (np.char.encode(data[name], "utf-8") if name in unicode else data[name])
+    return out, unicode
+
+
+def _write_dataset(group, name: str, item):
+    arr = item if isinstance(item, Array) else Array(item, axes=tuple(
+        f"dim_{i}" for i in range(np.ndim(item))))
+    data = arr.data
+    if _is_dask(data):
+        chunks = tuple(max(c) if c else 1 for c in data.chunks)
+        dset = group.create_dataset(name, shape=data.shape, dtype=data.dtype,
+                                    chunks=chunks if data.size else None,
+                                    compression="gzip" if data.size else None,
+                                    compression_opts=1 if data.size else None)
+        # Chunk by chunk, in this thread: memory stays one chunk whatever the size.
+        for block_index in np.ndindex(*data.numblocks):
+            block = np.asarray(data.blocks[block_index].compute(scheduler="synchronous"))
+            where = tuple(slice(sum(c[:i]), sum(c[:i]) + c[i])
+                          for c, i in zip(data.chunks, block_index))
+            dset[where] = block
+    else:
+        data = np.asarray(data)
+        unicode = []
+        if data.dtype.names:
+            data, unicode = _encode_table(data)
+        elif data.dtype.kind == "U":
+            data = np.char.encode(data, "utf-8")
+            unicode = ["__all__"]
+        big = data.size > _COMPRESS_ABOVE and data.ndim > 0
+        dset = group.create_dataset(name, data=data, chunks=True if big else None,
+                                    compression="gzip" if big else None,
+                                    compression_opts=1 if big else None)
+        if unicode:
+            dset.attrs["unicode_fields"] = json.dumps(unicode)
+    dset.attrs["axes"] = json.dumps(list(arr.axes))
+    dset.attrs["unit"] = arr.unit
+    if arr.doc:
+        dset.attrs["doc"] = arr.doc
+
+
+def _attr_value(value):
+    if isinstance(value, (str, bool, int, float, np.integer, np.floating, np.bool_)):
+        return value
+    if value is None:
+        return json.dumps(None)
+    return json.dumps(value, default=repr)
+
+
+def write_product(path, outputs: dict, provenance: dict) -> Path:
+    """Write a product atomically.
+
+    Parameters
+    ----------
+    path : final path ``WORK/<stage>/<label>.<key>.h5``
+    outputs : mapping name -> Array | ndarray | dask array | scalar | str | JSON-able
+        Arrays become datasets, everything else attributes.
+    provenance : mapping of JSON-able values, stored as attributes (``prov_`` prefix
+        is not added; keys must not collide with outputs).
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}-{uuid.uuid4().hex[:8]}.tmp")
+    try:
+        with h5py.File(tmp, "w") as f:
+            for k, v in provenance.items():
+                f.attrs[k] = _attr_value(v)
+            for name, item in outputs.items():
+                if isinstance(item, Array) or isinstance(item, np.ndarray) or _is_dask(item):
+                    _write_dataset(f, name, item)
+                else:
+                    f.attrs[name] = _attr_value(item)
+            f.flush()
+            f.attrs["complete"] = True
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+    return path
+
+
+def write_failure(workdir, stage, label, key, message: str, provenance: dict) -> Path:
+    path = failure_path(workdir, stage, label, key)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.tmp")
+    tmp.write_text(json.dumps({"message": message, "created": _utc_now(), **provenance},
+                              default=repr, indent=1))
+    os.replace(tmp, path)
+    return path
+
+
+def read_failure(workdir, stage, label, key) -> str | None:
+    path = failure_path(workdir, stage, label, key)
+    try:
+        return json.loads(path.read_text())["message"]
+    except (OSError, ValueError, KeyError):
+        return None
+
+
+def _utc_now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+class ProductView:
+    """Read access to one product file.
+
+    ``view["name"]`` -> numpy array (tables as structured arrays), ``view.dask(name)``
+    -> chunked dask array, ``view.attrs`` -> dict, ``view.axes(name)``,
+    ``view.unit(name)``, ``name in view``, ``view.path``, ``view.key``.
+    """
+
+    def __init__(self, path):
+        self.path = Path(path)
+        if not is_complete(self.path):
+            from .errors import BadInput
+            raise BadInput(self.path, "product is missing or incomplete")
+        self._file = None
+
+    def _h5(self):
+        if self._file is None:
+            self._file = h5py.File(self.path, "r")
+        return self._file
+
+    def close(self):
+        if self._file is not None:
+            self._file.close()
+            self._file = None
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+    def __reduce__(self):
+        return (ProductView, (str(self.path),))
+
+    def __dask_tokenize__(self):
+        return ("ProductView", str(self.path), self.key)
+
+    def __contains__(self, name) -> bool:
+        with _H5_LOCK:
+            return name in self._h5()
+
+    def keys(self) -> list[str]:
+        with _H5_LOCK:
+            return list(self._h5().keys())
+
+    @property
+    def key(self) -> str:
+        return self.attrs.get("key", "")
+
+    @property
+    def attrs(self) -> dict:
+        with _H5_LOCK:
+            return {k: (v.item() if isinstance(v, np.generic) else v)
+                    for k, v in self._h5().attrs.items()}
+
+    def _dset(self, name):
+        f = self._h5()
+        if name not in f:
+            from .errors import BadInput
+            raise BadInput(self.path, f"product has no dataset {name!r} "
+                                      f"(has {sorted(f.keys())})")
+        return f[name]
+
+    def __getitem__(self, name) -> np.ndarray:
+        with _H5_LOCK:
+            d = self._dset(name)
+            data = d[()]
+            unicode = json.loads(d.attrs.get("unicode_fields", "[]"))
+        if unicode == ["__all__"]:
+            return np.char.decode(data, "utf-8")
+        if unicode:
+            fields = [(n, f"U{max(1, data.dtype[n].itemsize)}" if n in unicode else data.dtype[n])
+                      for n in data.dtype.names]
+            out = np.empty(data.shape, dtype=fields)
+            for n in data.dtype.names:
+                out[n] = np.char.decode(data[n], "utf-8") if n in unicode else data[n]
+            return out
+        return data
+
+    def axes(self, name) -> tuple[str, ...]:
+        with _H5_LOCK:
+            return tuple(json.loads(self._dset(name).attrs["axes"]))
+
+    def unit(self, name) -> str:
+        with _H5_LOCK:
+            return str(self._dset(name).attrs["unit"])
+
+    def dask(self, name):
+        """Dataset as a dask array chunked like the file (read lazily)."""
+        import dask.array as da
+        with _H5_LOCK:
+            d = self._dset(name)
+            chunks = d.chunks or d.shape
+            shape, dtype = d.shape, d.dtype
+        return da.from_array(_H5Block(str(self.path), name, shape, dtype), chunks=chunks,
+                             asarray=False, name=f"product-{self.key}-{name}")
+
+
+class _H5Block:
+    """Picklable lazy accessor of one dataset (opens the file per read)."""
+
+    def __init__(self, path, name, shape, dtype):
+        self.path, self.name, self.shape, self.dtype = path, name, tuple(shape), np.dtype(dtype)
+        self.ndim = len(self.shape)
+
+    def __getitem__(self, index):
+        with _H5_LOCK, h5py.File(self.path, "r") as f:
+            return f[self.name][index]
