@@ -1,0 +1,312 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Spectral traces on the science detector: centres, cross-profiles, pixel response.
+
+Every output (or output and polarisation) of the combiner draws one spectrum
+along x. Its cross-profile is modelled as a Gaussian of width ``sigma``
+integrated over each pixel (unit sum over y), centred on ``y_k(x)``, a
+low-order polynomial in x (tilt and curvature). The profiles feed optimal
+extraction (Horne 1986, PASP 98, 609; ``pipeline.numerics.extraction``).
+
+Axes: images are ``(y, x)``; per-trace quantities are ``(trace, x)``, with the
+trace index ``output * n_pol + pol`` (DEVELOPERS.md). Pixels in px, fluxes in
+whatever unit the image has (e- after dark subtraction, usually).
+
+Mask policy: ``valid`` (True = usable pixel) excludes pixels from every fit;
+NaN pixels raise unless masked.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.polynomial import polynomial as npoly
+from scipy.special import erf
+
+__all__ = ["TraceFit", "trace_profiles", "find_traces", "fit_amplitudes", "pixel_response",
+           "combine_valid"]
+
+_SQRT2 = np.sqrt(2.0)
+_INV_SQRT_2PI = 1.0 / np.sqrt(2.0 * np.pi)
+
+
+@dataclass(frozen=True)
+class TraceFit:
+    """Result of :func:`find_traces`.
+
+    Attributes
+    ----------
+    trace_y : ndarray (trace, x), px -- smooth centre law evaluated at every column
+    profile_sigma : ndarray (trace, x), px -- smooth Gaussian width (pixel-integrated model)
+    centre_coeffs, sigma_coeffs : ndarray (trace, deg + 1) -- polynomial coefficients in
+        ``(x - x_ref) / x_scale``, lowest order first (``numpy.polynomial.polynomial``)
+    x_ref, x_scale : float, px
+    centre_measured, sigma_measured, amplitude : ndarray (trace, x) -- per-column fit
+    fit_used : ndarray (trace, x) bool -- columns kept in the polynomial fits
+    centre_residual_rms : ndarray (trace,), px -- QC: RMS of measured minus law
+    """
+    trace_y: np.ndarray
+    profile_sigma: np.ndarray
+    centre_coeffs: np.ndarray
+    sigma_coeffs: np.ndarray
+    x_ref: float
+    x_scale: float
+    centre_measured: np.ndarray
+    sigma_measured: np.ndarray
+    amplitude: np.ndarray
+    fit_used: np.ndarray
+    centre_residual_rms: np.ndarray
+
+
+def _pix_gauss(y, c, s):
+    """Pixel-integrated unit Gaussian and its derivatives wrt c and s. Broadcasts."""
+    up = (y + 0.5 - c) / s
+    um = (y - 0.5 - c) / s
+    p = 0.5 * (erf(up / _SQRT2) - erf(um / _SQRT2))
+    gp = _INV_SQRT_2PI * np.exp(-0.5 * up * up)
+    gm = _INV_SQRT_2PI * np.exp(-0.5 * um * um)
+    dp_dc = (gm - gp) / s
+    dp_ds = (um * gm - up * gp) / s
+    return p, dp_dc, dp_ds
+
+
+def trace_profiles(trace_y, profile_sigma, *, n_y: int) -> np.ndarray:
+    """Normalised cross-profiles of every trace.
+
+    Parameters
+    ----------
+    trace_y, profile_sigma : array_like, shape (n_trace, n_x), px
+    n_y : int, detector rows
+
+    Returns
+    -------
+    profiles : ndarray, shape (n_trace, n_y, n_x), float64
+        Pixel-integrated Gaussian; sums to 1 over y for a trace far from the edges.
+    """
+    ty = np.asarray(trace_y, float)[:, None, :]
+    ts = np.asarray(profile_sigma, float)[:, None, :]
+    y = np.arange(n_y, dtype=float)[None, :, None]
+    return _pix_gauss(y, ty, ts)[0]
+
+
+def _check_image(image, valid, name="image"):
+    image = np.asarray(image, float)
+    if image.ndim != 2:
+        raise ValueError(f"{name} must be 2-D (y, x), found shape {image.shape}")
+    valid = np.ones(image.shape, bool) if valid is None else np.broadcast_to(
+        np.asarray(valid, bool), image.shape)
+    bad_nan = ~np.isfinite(image) & valid
+    if bad_nan.any():
+        raise ValueError(f"{name} has {int(bad_nan.sum())} non-finite pixels not excluded by "
+                         "`valid`; mask them (valid=False) first")
+    return np.where(valid, image, 0.0), valid
+
+
+def _column_fit(image, valid, c0, s0, *, n_iter=12, fit_shape=True):
+    """Joint least-squares fit, column by column (vectorised over x), of
+    background + sum_k a_k P(y; c_k, s_k). Returns a, c, s of shape (trace, x)."""
+    n_y, n_x = image.shape
+    n_t = c0.shape[0]
+    y = np.arange(n_y, dtype=float)[None, :, None]          # (1, y, 1)
+    w = valid.astype(float).T                                # (x, y)
+    d = image.T                                              # (x, y)
+    c, s = c0.T.copy(), s0.T.copy()                          # (x, trace)
+    a = None
+    for _ in range(n_iter if fit_shape else 1):
+        p, dc, ds = _pix_gauss(y, c.T[:, None, :], s.T[:, None, :])  # (trace, y, x)
+        p, dc, ds = (q.transpose(2, 1, 0) for q in (p, dc, ds))      # (x, y, trace)
+        ones = np.ones((n_x, n_y, 1))
+        if a is None or not fit_shape:
+            jac = np.concatenate([p, ones], axis=2)
+            jw = (jac * w[:, :, None]).transpose(0, 2, 1)
+            lhs, rhs = jw @ jac, (jw @ d[:, :, None])[..., 0]
+            lhs += 1e-12 * np.trace(lhs, axis1=1, axis2=2)[:, None, None] * np.eye(n_t + 1)
+            sol = np.linalg.solve(lhs, rhs[..., None])[..., 0]
+            a, b = sol[:, :n_t], sol[:, n_t]
+            if not fit_shape:
+                break
+        model = (p @ a[:, :, None])[..., 0] + b[:, None]
+        res = d - model
+        jac = np.concatenate([p, dc * a[:, None, :], ds * a[:, None, :], ones], axis=2)
+        jw = (jac * w[:, :, None]).transpose(0, 2, 1)
+        lhs, rhs = jw @ jac, (jw @ res[:, :, None])[..., 0]
+        diag = np.einsum("xii->xi", lhs)
+        lhs = lhs + np.einsum("xi,ij->xij", 1e-3 * diag + 1e-12 * diag.max(1, keepdims=True),
+                              np.eye(lhs.shape[1]))
+        step = np.linalg.solve(lhs, rhs[..., None])[..., 0]
+        a = a + step[:, :n_t]
+        c = c + np.clip(step[:, n_t:2 * n_t], -0.5, 0.5)
+        s = np.clip(s + np.clip(step[:, 2 * n_t:3 * n_t], -0.3, 0.3), 0.3, 5.0)
+        b = b + step[:, 3 * n_t]
+    return a.T, c.T, s.T
+
+
+def _robust_polyfit(x, values, weights, deg, *, clip=4.0, n_iter=4):
+    """Weighted polynomial fit per row with sigma clipping. x (n,), values (t, n)."""
+    n_t = values.shape[0]
+    coeffs = np.zeros((n_t, deg + 1))
+    used = weights > 0
+    for k in range(n_t):      # loop over traces only (<= 48), each a tiny fit
+        u = used[k].copy()
+        for _ in range(n_iter):
+            if u.sum() <= deg:
+                break
+            coeffs[k] = npoly.polyfit(x[u], values[k, u], deg, w=np.sqrt(weights[k, u]))
+            res = values[k] - npoly.polyval(x, coeffs[k])
+            scale = 1.4826 * np.median(np.abs(res[u])) + 1e-6
+            new = used[k] & (np.abs(res) < clip * scale)
+            if np.array_equal(new, u):
+                break
+            u = new
+        used[k] = u
+    return coeffs, used
+
+
+def find_traces(flat, nominal_y, *, valid=None, nominal_sigma: float = 1.0,
+                centre_deg: int = 2, sigma_deg: int = 2, min_snr: float = 10.0,
+                read_noise: float = 0.0) -> TraceFit:
+    """Locate every trace of a lamp flat and measure its cross-profile.
+
+    Each column is fitted jointly (neighbouring traces overlap in split
+    polarisation) with a constant background plus one pixel-integrated
+    Gaussian per trace (Levenberg-Marquardt, vectorised over columns); the
+    centres and widths are then smoothed by polynomials in x with sigma clipping.
+
+    Parameters
+    ----------
+    flat : array_like, shape (n_y, n_x), dark-subtracted lamp flat (e- or ADU)
+    nominal_y : array_like, shape (n_trace,), px -- nominal centres (first guess),
+        increasing; the traces may be offset from them by up to ~1/3 of the spacing
+    valid : array_like of bool, shape (n_y, n_x), optional -- True = usable pixel
+    nominal_sigma : float, px -- first guess of the Gaussian width
+    centre_deg, sigma_deg : int -- polynomial degrees of y_k(x) and sigma_k(x)
+    min_snr : float -- columns whose amplitude is below ``min_snr`` times its noise
+        estimate are left out of the polynomial fits
+    read_noise : float, same unit as ``flat`` -- for the amplitude noise estimate
+
+    Returns
+    -------
+    TraceFit
+
+    Raises
+    ------
+    ValueError
+        If the image has unmasked NaNs, or a trace has too few usable columns.
+    """
+    image, valid = _check_image(flat, valid, "flat")
+    n_y, n_x = image.shape
+    nominal_y = np.asarray(nominal_y, float)
+    n_t = nominal_y.size
+    spacing = np.min(np.diff(nominal_y)) if n_t > 1 else 8.0
+    # Coarse step: one global offset per trace from the x-median profile's centroid.
+    yy = np.arange(n_y, dtype=float)
+    prof = np.median(np.where(valid, image, np.nan), axis=1)
+    prof = np.nan_to_num(prof - np.nanmin(prof))
+    half = spacing / 2
+    c0 = np.empty(n_t)
+    for k, yk in enumerate(nominal_y):   # per trace, a 1-D centroid
+        sel = np.abs(yy - yk) < half
+        wk = prof[sel]
+        c0[k] = np.sum(wk * yy[sel]) / wk.sum() if wk.sum() > 0 else yk
+    c_init = np.repeat(c0[:, None], n_x, axis=1)
+    s_init = np.full((n_t, n_x), float(nominal_sigma))
+    a, c, s = _column_fit(image, valid, c_init, s_init)
+    # Noise of the amplitude ~ sqrt(a * few px + read noise^2 * few px): common practice.
+    noise = np.sqrt(np.abs(a) * 2.5 * s + 5 * s * read_noise ** 2 + 1e-12)
+    weight = np.where((a > min_snr * noise) & np.isfinite(c) & np.isfinite(s),
+                      (a / noise) ** 2, 0.0)
+    x = np.arange(n_x, dtype=float)
+    x_ref, x_scale = (n_x - 1) / 2, max((n_x - 1) / 2, 1.0)
+    xs = (x - x_ref) / x_scale
+    if np.any((weight > 0).sum(axis=1) <= max(centre_deg, sigma_deg)):
+        bad = np.flatnonzero((weight > 0).sum(axis=1) <= max(centre_deg, sigma_deg))
+        raise ValueError(f"traces {bad.tolist()} have too few columns with signal "
+                         f"(amplitude > {min_snr} x noise) to fit their position")
+    cc, used = _robust_polyfit(xs, c, weight, centre_deg)
+    sc, used_s = _robust_polyfit(xs, s, np.where(used, weight, 0.0), sigma_deg)
+    trace_y = np.stack([npoly.polyval(xs, cc[k]) for k in range(n_t)])
+    sigma = np.stack([npoly.polyval(xs, sc[k]) for k in range(n_t)])
+    res = np.where(used, c - trace_y, np.nan)
+    rms = np.sqrt(np.nanmean(res ** 2, axis=1))
+    return TraceFit(trace_y=trace_y, profile_sigma=sigma, centre_coeffs=cc, sigma_coeffs=sc,
+                    x_ref=float(x_ref), x_scale=float(x_scale), centre_measured=c,
+                    sigma_measured=s, amplitude=a, fit_used=used, centre_residual_rms=rms)
+
+
+def fit_amplitudes(image, trace_y, profile_sigma, *, valid=None):
+    """Per-column amplitudes of fixed trace profiles (joint linear least squares
+    with a constant background per column).
+
+    Parameters
+    ----------
+    image : array_like, shape (n_y, n_x)
+    trace_y, profile_sigma : array_like, shape (n_trace, n_x), px
+    valid : array_like of bool, shape (n_y, n_x), optional
+
+    Returns
+    -------
+    amplitude : ndarray (n_trace, n_x) -- flux of each trace per column (image unit)
+    model : ndarray (n_y, n_x) -- background + sum of profiles x amplitudes
+    """
+    image, valid = _check_image(image, valid)
+    ty, ts = np.asarray(trace_y, float), np.asarray(profile_sigma, float)
+    a, _, _ = _column_fit(image, valid, ty, ts, fit_shape=False)
+    prof = trace_profiles(ty, ts, n_y=image.shape[0])
+    model_tr = np.einsum("kyx,kx->yx", prof, a)
+    # background: the least-squares constant of the same fit, recovered from the residual
+    w = valid.astype(float)
+    bkg = np.sum(w * (image - model_tr), axis=0) / np.maximum(w.sum(axis=0), 1)
+    return a, model_tr + bkg[None, :]
+
+
+def pixel_response(flat, trace_y, profile_sigma, *, valid=None, min_fraction: float = 0.05):
+    """Pixel response (flat field) = lamp flat / smooth model of the traces.
+
+    The smooth model is the fitted profiles times their per-column amplitude
+    (:func:`fit_amplitudes`); the response is the ratio where the model exceeds
+    ``min_fraction`` of its column maximum, and exactly 1 elsewhere (too little
+    light to measure; such pixels carry no weight in optimal extraction).
+
+    Parameters
+    ----------
+    flat : array_like, shape (n_y, n_x), dark-subtracted lamp flat
+    trace_y, profile_sigma : array_like, shape (n_trace, n_x), px
+    valid : array_like of bool, shape (n_y, n_x), optional
+    min_fraction : float in (0, 1)
+
+    Returns
+    -------
+    response : ndarray (n_y, n_x), dimensionless, 1 on average within traces
+    lamp_spectrum : ndarray (n_trace, n_x) -- the amplitudes (flat unit per column)
+    """
+    image, valid = _check_image(flat, valid, "flat")
+    amp, model = fit_amplitudes(image, trace_y, profile_sigma, valid=valid)
+    lit = (model > min_fraction * model.max(axis=0, keepdims=True)) & valid & (model > 0)
+    response = np.ones_like(image)
+    np.divide(image, model, out=response, where=lit)
+    return response, amp
+
+
+def combine_valid(dark_valid, response, *, flat_saturated=None, response_range=(0.5, 1.5)):
+    """Bad-pixel mask of the science detector (True = usable).
+
+    A pixel is usable if the dark stage kept it, its response is finite and
+    within ``response_range``, and it was not saturated in the flat.
+
+    Parameters
+    ----------
+    dark_valid : array_like of bool, shape (n_y, n_x)
+    response : array_like, shape (n_y, n_x)
+    flat_saturated : array_like of bool, shape (n_y, n_x), optional
+    response_range : (float, float)
+
+    Returns
+    -------
+    valid : ndarray of bool, shape (n_y, n_x)
+    """
+    r = np.asarray(response, float)
+    lo, hi = response_range
+    ok = np.asarray(dark_valid, bool) & np.isfinite(r) & (r >= lo) & (r <= hi)
+    if flat_saturated is not None:
+        ok &= ~np.asarray(flat_saturated, bool)
+    return ok
