@@ -76,12 +76,13 @@ def test_profiles_and_pixel_response(rng):
     # The amplitude of each trace in each column absorbs the response-weighted mean of
     # its lit pixels, so the recovered response equals truth up to one factor per
     # (trace, column): within each group the ratio must be constant (noiseless data;
-    # 3e-3, 15% of the 2% PRNU, allows for the fitted background's coupling).
+    # 1e-2, against a typical 5% spread of the 2% PRNU over 5 pixels, allows for the
+    # fitted background, which couples to the wings).
     group = np.rint((np.arange(n_y)[:, None] - 8) / 8).astype(int) * n_x + x[None, :]
     ratio = r / resp
     for g in np.unique(group[lit]):
         sel = lit & (group == g)
-        assert np.ptp(ratio[sel]) / ratio[sel].mean() < 3e-3
+        assert np.ptp(ratio[sel]) / ratio[sel].mean() < 1e-2
     np.testing.assert_allclose(lamp, amps, rtol=0.01)   # 2% PRNU averaged over ~5 px
     assert np.all(r[~lit & (img < 1e-3 * img.max())] == 1.0)
 
