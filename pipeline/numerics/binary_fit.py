@@ -1,0 +1,413 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Binary-star fit to calibrated interferometric observables: global grid search,
+lmfit refinement from the best few minima, covariance and bootstrap errors, flags.
+
+Method. The chi-square surface of a binary in (dRA, dDec) is multi-modal with a
+period of about one fringe spacing lambda/B, so a local optimiser alone finds the
+nearest local minimum. We evaluate chi-square (squared visibilities and closure
+phases) on a square grid over the fibre's field with a step of at most a quarter
+of the smallest fringe spacing lambda_min / B_max, profiling the flux ratio over a
+small logarithmic grid, then refine the best few distinct local minima with a
+Levenberg-Marquardt least-squares fit (lmfit; More 1978, Lecture Notes in
+Mathematics 630, 105) of the full model, including referenced phases and the
+primary's offset from the science pointing when calibrated phases are given. This
+is the approach of e.g. Le Bouquin & Absil 2012, A&A 541, A89 (chi-square maps of
+companion searches with interferometric closure phases and V2).
+
+Errors. The lmfit covariance (from the Jacobian at the optimum) is scaled by
+chi2_red when chi2_red > 1. A bootstrap gives a second covariance: over frames if
+bootstrap realisations of the observables are supplied (``vis2_boot`` ...), else
+over spectral channels (each resample draws channels with replacement, keeping
+every baseline and triangle of a channel together; Efron & Tibshirani 1993, An
+Introduction to the Bootstrap, ch. 6). The larger of the two (by the trace of the
+position block) is reported; the flux-ratio error is the larger of the two.
+
+Flags (bit mask, :data:`FLAGS`):
+
+* 1 ``ambiguous``: a distinct runner-up minimum within ``ambiguous_dchi2`` (chi-square
+  scaled by max(1, chi2_red)) of the best one, e.g. the 180-degree ambiguity of a
+  near-equal binary;
+* 2 ``field_edge``: best position within one grid step of the search radius;
+* 4 ``flux_ratio_zero``: flux ratio below 3 sigma;
+* 8 ``chi2_red``: reduced chi-square outside [chi2_red_min, chi2_red_max];
+* 16 ``no_covariance``: lmfit could not estimate a covariance (bootstrap only).
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from typing import Literal
+
+import numpy as np
+
+from pipeline.numerics.binary_model import (BASELINES, TRIANGLES, binary_observables,
+                                            grid_chi2, wrap)
+from pipeline.numerics.ellipse import ErrorEllipse, SepPA, correlation, error_ellipse, sep_pa
+
+__all__ = ["FLAGS", "Observables", "BinaryFitResult", "fit_binary", "search_grid",
+           "params_to_json", "params_from_json", "to_jsonable"]
+
+FLAGS = {"ambiguous": 1, "field_edge": 2, "flux_ratio_zero": 4, "chi2_red": 8,
+         "no_covariance": 16}
+"""Bit of each quality flag of :class:`BinaryFitResult`."""
+
+
+@dataclass(frozen=True, eq=False)
+class Observables:
+    """Calibrated observables of one exposure (never modified by the fit).
+
+    Attributes
+    ----------
+    vis2, vis2_err : ndarray, shape (n_pol, n_baseline, n_wave)
+    t3phi, t3phi_err : ndarray, shape (n_pol, n_triangle, n_wave), radians
+    uvw : ndarray, shape (n_baseline, 3) or (n_time, n_baseline, 3), metres
+    wave, bandwidth : ndarray, shape (n_wave,), metres (bandwidth: channel FWHM)
+    visphi, visphi_err : ndarray, shape (n_pol, n_baseline, n_wave), radians, or None
+        Calibrated referenced phases (phase centre: the science pointing).
+    vis2_boot, t3phi_boot, visphi_boot : ndarray, shape (n_boot, ...) or None
+        Bootstrap realisations over frames of the same observables.
+    """
+    vis2: np.ndarray
+    vis2_err: np.ndarray
+    t3phi: np.ndarray
+    t3phi_err: np.ndarray
+    uvw: np.ndarray
+    wave: np.ndarray
+    bandwidth: np.ndarray | None = None
+    visphi: np.ndarray | None = None
+    visphi_err: np.ndarray | None = None
+    vis2_boot: np.ndarray | None = None
+    t3phi_boot: np.ndarray | None = None
+    visphi_boot: np.ndarray | None = None
+    baselines: tuple = BASELINES
+    triangles: tuple = TRIANGLES
+
+    def __post_init__(self):
+        nw = np.shape(self.wave)[-1]
+        nb, nt = len(self.baselines), len(self.triangles)
+        for name, shape in [("vis2", (nb, nw)), ("vis2_err", (nb, nw)), ("t3phi", (nt, nw)),
+                            ("t3phi_err", (nt, nw))]:
+            if np.shape(getattr(self, name))[1:] != shape:
+                raise ValueError(f"Observables.{name}: expected shape (pol, {shape[0]}, {nw}), "
+                                 f"found {np.shape(getattr(self, name))}")
+        if (self.visphi is None) != (self.visphi_err is None):
+            raise ValueError("Observables: give both visphi and visphi_err, or neither")
+        if np.shape(self.uvw)[-2:] != (nb, 3):
+            raise ValueError(f"Observables.uvw: expected (..., {nb}, 3), found {np.shape(self.uvw)}")
+
+    @property
+    def has_phase(self) -> bool:
+        return self.visphi is not None
+
+    @property
+    def has_boot(self) -> bool:
+        return self.vis2_boot is not None and self.t3phi_boot is not None
+
+
+@dataclass(frozen=True, eq=False)
+class BinaryFitResult:
+    """Best binary model of one exposure. Offsets in mas, companion minus primary."""
+    dra: float
+    ddec: float
+    cov: np.ndarray                       # (2, 2) mas^2, reported (larger of fit/bootstrap)
+    dra_err: float
+    ddec_err: float
+    dra_ddec_corr: float
+    flux_ratio: float
+    flux_ratio_err: float
+    flux_slope: float
+    primary_dra: float                    # NaN without calibrated phases
+    primary_ddec: float
+    primary_dra_err: float
+    primary_ddec_err: float
+    sep_pa: SepPA
+    ellipse: ErrorEllipse
+    chi2: float
+    chi2_red: float
+    ndata: int
+    nfree: int
+    flag: int
+    runner_up_dra: float
+    runner_up_ddec: float
+    runner_up_dchi2: float                # raw chi-square difference, NaN if none
+    cov_fit: np.ndarray                   # (2, 2) scaled lmfit covariance
+    cov_boot: np.ndarray                  # (2, 2) bootstrap covariance
+    error_source: str                     # "fit" or "bootstrap"
+    bootstrap_kind: str                   # "frames", "channels" or "none"
+    n_boot: int
+    grid_dra: np.ndarray                  # (n_x,) mas
+    grid_ddec: np.ndarray                 # (n_y,) mas
+    chi2_map: np.ndarray                  # (n_y, n_x), flux ratio profiled; NaN outside field
+    minima: np.ndarray                    # (n_min, 3): dra, ddec, chi2 of the grid minima
+    params_json: str                      # lmfit Parameters of the best fit
+    flag_names: tuple = field(default=())
+
+
+def search_grid(uvw_m, wave_m, *, radius_mas, step_fraction=0.25):
+    """Square search grid over a disk, step <= step_fraction * lambda_min / B_max.
+
+    Returns
+    -------
+    grid_dra, grid_ddec : ndarray, shapes (n_x,), (n_y,), mas
+    step_mas : float
+    """
+    uvw = np.asarray(uvw_m, float)
+    bmax = np.max(np.hypot(uvw[..., 0], uvw[..., 1]))
+    step = step_fraction * np.min(wave_m) / bmax / (np.pi / 180 / 3600e3)
+    n = int(np.ceil(radius_mas / step))
+    axis = np.arange(-n, n + 1) * step
+    return axis, axis.copy(), float(step)
+
+
+def _local_minima(chi2_map, n_max):
+    from scipy.ndimage import minimum_filter
+    filled = np.where(np.isfinite(chi2_map), chi2_map, np.inf)
+    is_min = (filled == minimum_filter(filled, size=3, mode="nearest")) & np.isfinite(filled)
+    iy, ix = np.nonzero(is_min)
+    order = np.argsort(filled[iy, ix])[:n_max]
+    return iy[order], ix[order]
+
+
+def _residual_factory(obs, *, fibre_fwhm_mas, diameters, vis2, t3phi, visphi, weight):
+    """Residual vector (data - model) / error over valid points; ``weight`` (n_wave,)
+    multiplies each channel's squared residual (channel bootstrap)."""
+    ok2 = np.isfinite(vis2) & np.isfinite(obs.vis2_err) & (obs.vis2_err > 0)
+    okt = np.isfinite(t3phi) & np.isfinite(obs.t3phi_err) & (obs.t3phi_err > 0)
+    okp = (np.isfinite(visphi) & np.isfinite(obs.visphi_err) & (obs.visphi_err > 0)
+           if visphi is not None else None)
+    sw = np.sqrt(weight)
+
+    def residual(params):
+        p = params.valuesdict()
+        m2, mt, mp = binary_observables(
+            obs.uvw, obs.wave, dra_mas=p["dra"], ddec_mas=p["ddec"], flux_ratio=p["flux_ratio"],
+            flux_slope=p["flux_slope"], primary_dra_mas=p["primary_dra"],
+            primary_ddec_mas=p["primary_ddec"], diameter1_mas=diameters[0],
+            diameter2_mas=diameters[1], bandwidth_m=obs.bandwidth, fibre_fwhm_mas=fibre_fwhm_mas,
+            baselines=obs.baselines, triangles=obs.triangles)
+        parts = [((vis2 - m2) / obs.vis2_err * sw)[ok2],
+                 (wrap(t3phi - mt) / obs.t3phi_err * sw)[okt]]
+        if visphi is not None:
+            parts.append((wrap(visphi - mp) / obs.visphi_err * sw)[okp])
+        return np.concatenate(parts)
+    return residual, int(ok2.sum() + okt.sum() + (okp.sum() if okp is not None else 0))
+
+
+def _params(dra, ddec, ratio, *, radius, ratio_max, fit_slope, has_phase):
+    import lmfit
+    p = lmfit.Parameters()
+    p.add("dra", value=dra, min=-2 * radius, max=2 * radius)
+    p.add("ddec", value=ddec, min=-2 * radius, max=2 * radius)
+    p.add("flux_ratio", value=max(ratio, 1e-4), min=0.0, max=2 * ratio_max)
+    p.add("flux_slope", value=0.0, vary=fit_slope, min=-10, max=10)
+    p.add("primary_dra", value=0.0, vary=has_phase, min=-radius, max=radius)
+    p.add("primary_ddec", value=0.0, vary=has_phase, min=-radius, max=radius)
+    return p
+
+
+def _refine(residual, start):
+    import lmfit
+    return lmfit.minimize(residual, start, method="leastsq", scale_covar=False, nan_policy="raise")
+
+
+def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_mas: float,
+               step_fraction: float = 0.25, flux_ratios=None, flux_ratio_max: float = 1.5,
+               fit_slope: bool = False, diameters_mas=(0.0, 0.0), n_start: int = 5,
+               n_boot: int = 50, search_max_channels: int = 32, ambiguous_dchi2: float = 10.0,
+               chi2_red_range=(0.2, 5.0), bootstrap: Literal["auto", "channels", "none"] = "auto",
+               seed: int = 0) -> BinaryFitResult:
+    """Fit a binary to one exposure's observables.
+
+    Parameters
+    ----------
+    obs : Observables
+    fibre_fwhm_mas : float or None, fibre acceptance FWHM at 2.2 um, mas (None: none)
+    search_radius_mas : float, radius of the global search about the primary, mas
+    step_fraction : float, grid step in units of lambda_min / B_max (<= 0.25)
+    flux_ratios : array_like or None, trial flux ratios of the search
+        (default 16 values log-spaced from 1e-3 to ``flux_ratio_max``)
+    flux_ratio_max : float, largest flux ratio searched (> 1 lets the search see the
+        mirror solution of near-equal binaries)
+    fit_slope : bool, fit the flux ratio's spectral index
+    diameters_mas : (float, float), fixed uniform-disk diameters of primary, companion
+    n_start : int, number of grid minima refined
+    n_boot : int, bootstrap realisations (0: none)
+    search_max_channels : int, channels (evenly spread) used by the grid search
+    ambiguous_dchi2, chi2_red_range : flag thresholds (see module docstring)
+    bootstrap : "auto" (frames if given, else channels), "channels" or "none"
+    seed : int, seed of the channel bootstrap
+
+    Returns
+    -------
+    BinaryFitResult
+
+    Raises
+    ------
+    FitFailed
+        Fewer valid data points than free parameters.
+    """
+    from pipeline.errors import FitFailed
+    if not 0 < step_fraction <= 0.25:
+        raise ValueError(f"step_fraction must be in (0, 0.25], found {step_fraction}")
+    if bootstrap not in ("auto", "channels", "none"):
+        raise ValueError(f"bootstrap must be 'auto', 'channels' or 'none', found {bootstrap!r}")
+    ratios = (np.geomspace(1e-3, flux_ratio_max, 16) if flux_ratios is None
+              else np.asarray(flux_ratios, float))
+    uvw_mean = np.asarray(obs.uvw, float).reshape(-1, len(obs.baselines), 3).mean(0)
+    gx, gy, step = search_grid(obs.uvw, obs.wave, radius_mas=search_radius_mas,
+                               step_fraction=step_fraction)
+    xx, yy = np.meshgrid(gx, gy)
+    inside = np.hypot(xx, yy) <= search_radius_mas
+    nw = len(obs.wave)
+    ch = np.unique(np.linspace(0, nw - 1, min(nw, search_max_channels)).round().astype(int))
+    bw = None if obs.bandwidth is None else np.asarray(obs.bandwidth)[ch]
+    c2 = grid_chi2(obs.vis2[..., ch], obs.vis2_err[..., ch], obs.t3phi[..., ch],
+                   obs.t3phi_err[..., ch], uvw_mean, np.asarray(obs.wave)[ch],
+                   dra_mas=xx[inside], ddec_mas=yy[inside], flux_ratios=ratios, bandwidth_m=bw,
+                   fibre_fwhm_mas=fibre_fwhm_mas, baselines=obs.baselines,
+                   triangles=obs.triangles)
+    chi2_map = np.full(xx.shape, np.nan)
+    chi2_map[inside] = c2.min(1)
+    ratio_map = np.full(xx.shape, np.nan)
+    ratio_map[inside] = ratios[c2.argmin(1)]
+    iy, ix = _local_minima(chi2_map, n_start)
+    minima = np.column_stack([gx[ix], gy[iy], chi2_map[iy, ix]])
+
+    kw = dict(radius=search_radius_mas, ratio_max=flux_ratio_max, fit_slope=fit_slope,
+              has_phase=obs.has_phase)
+    residual, ndata = _residual_factory(
+        obs, fibre_fwhm_mas=fibre_fwhm_mas, diameters=diameters_mas, vis2=obs.vis2,
+        t3phi=obs.t3phi, visphi=obs.visphi, weight=np.ones(nw))
+    nfree = 3 + int(fit_slope) + 2 * int(obs.has_phase)
+    if ndata <= nfree:
+        raise FitFailed("binary fit", n_points=ndata, n_free=nfree)
+    fits = [_refine(residual, _params(gx[x], gy[y], ratio_map[y, x], **kw)) for y, x in zip(iy, ix)]
+    fits.sort(key=lambda f: f.chisqr)
+    best = fits[0]
+    bp = best.params
+    chi2 = float(best.chisqr)
+    chi2_red = chi2 / (ndata - nfree)
+    scale = max(1.0, chi2_red)
+
+    # Runner-up: best refined minimum at least half a fringe spacing from the best one.
+    min_dist = 2 * step
+    runner = next((f for f in fits[1:] if np.hypot(f.params["dra"].value - bp["dra"].value,
+                                                   f.params["ddec"].value - bp["ddec"].value)
+                   > min_dist), None)
+
+    names = ["dra", "ddec", "flux_ratio", "primary_dra", "primary_ddec"]
+    cov_fit_full = np.full((5, 5), np.nan)
+    if best.covar is not None:
+        idx = [best.var_names.index(n) if n in best.var_names else None for n in names]
+        for a, ia in enumerate(idx):
+            for b, ib in enumerate(idx):
+                if ia is not None and ib is not None:
+                    cov_fit_full[a, b] = best.covar[ia, ib] * scale
+
+    kind, samples = _bootstrap(obs, residual_kw=dict(fibre_fwhm_mas=fibre_fwhm_mas,
+                                                     diameters=diameters_mas),
+                               start=bp, n_boot=n_boot, mode=bootstrap, seed=seed, names=names)
+    cov_boot_full = (np.cov(samples, rowvar=False) if len(samples) > 2
+                     else np.full((5, 5), np.nan))
+    pos_fit, pos_boot = cov_fit_full[:2, :2], cov_boot_full[:2, :2]
+    use_boot = (not np.all(np.isfinite(pos_fit))
+                or (np.all(np.isfinite(pos_boot)) and np.trace(pos_boot) > np.trace(pos_fit)))
+    cov_full = cov_boot_full if use_boot else cov_fit_full
+    cov = cov_full[:2, :2]
+    err = np.sqrt(np.diag(cov_full))
+    ratio_err = float(np.nanmax([np.sqrt(cov_fit_full[2, 2]), np.sqrt(cov_boot_full[2, 2])]))
+
+    dra, ddec, ratio = bp["dra"].value, bp["ddec"].value, bp["flux_ratio"].value
+    flag = 0
+    dchi2 = float(runner.chisqr - chi2) if runner is not None else np.nan
+    if runner is not None and dchi2 / scale < ambiguous_dchi2:
+        flag |= FLAGS["ambiguous"]
+    if np.hypot(dra, ddec) > search_radius_mas - step:
+        flag |= FLAGS["field_edge"]
+    if not ratio > 3 * ratio_err:
+        flag |= FLAGS["flux_ratio_zero"]
+    if not chi2_red_range[0] <= chi2_red <= chi2_red_range[1]:
+        flag |= FLAGS["chi2_red"]
+    if not np.all(np.isfinite(pos_fit)):
+        flag |= FLAGS["no_covariance"]
+    nan = float("nan")
+    return BinaryFitResult(
+        dra=float(dra), ddec=float(ddec), cov=cov, dra_err=float(err[0]), ddec_err=float(err[1]),
+        dra_ddec_corr=correlation(cov), flux_ratio=float(ratio), flux_ratio_err=ratio_err,
+        flux_slope=float(bp["flux_slope"].value),
+        primary_dra=float(bp["primary_dra"].value) if obs.has_phase else nan,
+        primary_ddec=float(bp["primary_ddec"].value) if obs.has_phase else nan,
+        primary_dra_err=float(err[3]) if obs.has_phase else nan,
+        primary_ddec_err=float(err[4]) if obs.has_phase else nan,
+        sep_pa=sep_pa(dra, ddec, cov), ellipse=error_ellipse(cov), chi2=chi2, chi2_red=chi2_red,
+        ndata=ndata, nfree=nfree, flag=flag,
+        runner_up_dra=float(runner.params["dra"].value) if runner is not None else nan,
+        runner_up_ddec=float(runner.params["ddec"].value) if runner is not None else nan,
+        runner_up_dchi2=dchi2, cov_fit=pos_fit, cov_boot=pos_boot,
+        error_source="bootstrap" if use_boot else "fit", bootstrap_kind=kind,
+        n_boot=len(samples), grid_dra=gx, grid_ddec=gy, chi2_map=chi2_map, minima=minima,
+        params_json=params_to_json(bp), flag_names=tuple(k for k, b in FLAGS.items() if flag & b))
+
+
+def _bootstrap(obs, *, residual_kw, start, n_boot, mode, seed, names):
+    """Refit bootstrap realisations from the best fit; returns (kind, samples (n, 5))."""
+    if n_boot <= 0 or mode == "none":
+        return "none", np.empty((0, len(names)))
+    nw = len(obs.wave)
+    out = []
+    if obs.has_boot and mode == "auto":
+        kind = "frames"
+        for b in range(min(n_boot, len(obs.vis2_boot))):
+            res, _ = _residual_factory(
+                obs, vis2=obs.vis2_boot[b], t3phi=obs.t3phi_boot[b],
+                visphi=None if obs.visphi is None else (
+                    obs.visphi_boot[b] if obs.visphi_boot is not None else obs.visphi),
+                weight=np.ones(nw), **residual_kw)
+            out.append(_refine(res, start.copy()).params)
+    else:
+        kind = "channels"
+        rng = np.random.default_rng(seed)
+        for _ in range(n_boot):
+            weight = np.bincount(rng.integers(0, nw, nw), minlength=nw).astype(float)
+            res, _ = _residual_factory(obs, vis2=obs.vis2, t3phi=obs.t3phi, visphi=obs.visphi,
+                                       weight=weight, **residual_kw)
+            out.append(_refine(res, start.copy()).params)
+    return kind, np.array([[p[n].value for n in names] for p in out])
+
+
+def params_to_json(params) -> str:
+    """lmfit Parameters as compact JSON: {name: {value, stderr, vary, min, max}}."""
+    def num(x):
+        return None if x is None or not np.isfinite(x) else float(x)
+    return json.dumps({n: {"value": num(p.value), "stderr": num(p.stderr), "vary": bool(p.vary),
+                           "min": num(p.min), "max": num(p.max)} for n, p in params.items()})
+
+
+def params_from_json(text: str):
+    """lmfit Parameters rebuilt from :func:`params_to_json` (e.g. from a product's provenance)."""
+    import lmfit
+    out = lmfit.Parameters()
+    for name, d in json.loads(text).items():
+        out.add(name, value=d["value"], vary=d["vary"],
+                min=-np.inf if d["min"] is None else d["min"],
+                max=np.inf if d["max"] is None else d["max"])
+        out[name].stderr = d["stderr"]
+    return out
+
+
+def to_jsonable(result: BinaryFitResult) -> dict:
+    """Scalar fields of a result as a JSON-able dict (arrays and nested dataclasses flattened)."""
+    out = {}
+    for k, v in result.__dict__.items():
+        if isinstance(v, (SepPA, ErrorEllipse)):
+            pre = "" if isinstance(v, SepPA) else "ellipse_"
+            out.update({pre + kk: float(vv) for kk, vv in v.__dict__.items()})
+        elif isinstance(v, np.ndarray):
+            if v.shape == (2, 2):
+                out[k] = json.dumps(v.tolist())
+        elif isinstance(v, tuple):
+            out[k] = ",".join(v)
+        else:
+            out[k] = v
+    return out
