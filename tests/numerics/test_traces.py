@@ -83,7 +83,8 @@ def test_profiles_and_pixel_response(rng):
     for g in np.unique(group[lit]):
         sel = lit & (group == g)
         assert np.ptp(ratio[sel]) / ratio[sel].mean() < 1e-2
-    np.testing.assert_allclose(lamp, amps, rtol=0.01)   # 2% PRNU averaged over ~5 px
+    # 2% PRNU averaged over ~3 effective px: ~1.2% scatter, 4 sigma bound
+    np.testing.assert_allclose(lamp, amps, rtol=0.05)
     assert np.all(r[~lit & (img < 1e-3 * img.max())] == 1.0)
 
 
