@@ -1,0 +1,351 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Phase referencing of the science channel on the fringe tracker.
+
+Phase model (DEVELOPERS.md, "The phase model"): on baseline (i, j) the
+fringe tracker (FT) measures ``phi_ft = arg V_ft - 2 pi (r_j - r_i) / lambda_ft``
+at about 1 kHz, the science channel integrates
+``exp(-2 pi i (r_j - r_i + d_j - d_i) / lambda)`` over each frame. The steps:
+
+1. per FT frame and baseline, the group delay (slope of the phase against
+   wavenumber sigma = 1 / lambda across the FT pixels), the phase at the mean
+   wavenumber sigma_0 of the coherent flux summed over the FT pixels after
+   removing the group delay, and its signal-to-noise ratio (fringe tracking
+   with group and phase delays: Lawson 2000, Principles of Long Baseline
+   Stellar Interferometry, JPL 00-009, ch. 10);
+2. the residual path r_j - r_i per FT frame: the phase unwrapped in time,
+   with its whole number of fringes fixed by the (smoothed) group delay;
+3. frame selection: lock losses (low SNR, group-delay excursions) and
+   fringe jumps (tracking on a fringe other than the usual one, fringe-count
+   changes, triangles whose paths do not close);
+4. per science frame, the mean FT phasor <exp(-2 pi i (r_j - r_i) / lambda)>
+   over the frame at every science wavelength: its argument references the
+   science phase, its modulus is the frame's contrast loss;
+5. the dual-field term D_ij = (w_j - w_i)(s_sc) - (w_j - w_i)(s_ft) + PATH_j - PATH_i
+   from the pointings, the array geometry and the metrology.
+
+The referenced coherent flux is C exp(+2 pi i D / lambda) conj(M) / |M|: its
+phase is ``arg V_sc`` plus a zero-point per baseline and wavelength; its
+amplitude still carries the contrast loss |M|, which the averaging divides out
+in its normalisation (a ratio of sums, stable at low SNR).
+
+Lengths in metres, times in seconds, phases in radians. Axes are named in
+each docstring; ``n_ft`` FT frames, ``n_frame`` science frames, ``n_base``
+baselines, ``n_ftw`` FT pixels, ``n_wave`` science wavelengths.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.ndimage import maximum_filter1d, median_filter
+
+from ..geometry import uvw_from_enu
+
+__all__ = ["FringeEstimates", "fringe_estimates", "track_opd", "FLAG_LOW_SNR", "FLAG_GD_EXCURSION",
+           "FLAG_FRINGE_JUMP", "FLAG_CLOSURE", "flag_ft_frames", "frame_windows", "window_mean",
+           "window_fraction", "mean_phasor", "dual_field_delay", "reference_coherent"]
+
+FLAG_LOW_SNR = 1
+"""FT frame flag: SNR below threshold (lock loss)."""
+FLAG_GD_EXCURSION = 2
+"""FT frame flag: group delay far from its usual value (lock loss)."""
+FLAG_FRINGE_JUMP = 4
+"""FT frame flag: tracking on another fringe, or the fringe count changes nearby."""
+FLAG_CLOSURE = 8
+"""FT frame flag: a triangle containing the baseline does not close by more than half a fringe."""
+
+
+@dataclass(frozen=True)
+class FringeEstimates:
+    """Per-frame fringe-tracker estimates.
+
+    Attributes
+    ----------
+    phase : ndarray, shape (n_ft, n_base), rad, in (-pi, pi], at wavenumber 1 / wave_ref
+    group_delay : ndarray, shape (n_ft, n_base), m
+    snr : ndarray, shape (n_ft, n_base), dimensionless
+    wave_ref : float, m, 1 / mean wavenumber of the FT pixels
+    """
+    phase: np.ndarray
+    group_delay: np.ndarray
+    snr: np.ndarray
+    wave_ref: float
+
+
+def fringe_estimates(ft_coherent, ft_wave, *, ft_coherent_var, n_refine: int = 2) -> FringeEstimates:
+    """Group delay, phase and SNR of every FT frame and baseline.
+
+    Parameters
+    ----------
+    ft_coherent : array_like, shape (n_ft, n_base, n_ftw), complex
+        FT coherent fluxes (``extract`` product ``ft_coherent``).
+    ft_wave : array_like, shape (n_ftw,), m, strictly monotonic
+    ft_coherent_var : array_like, shape (n_ft, n_base, n_ftw), float
+        Variance of each of Re C and Im C.
+    n_refine : int
+        Weighted least-squares refinements of the group delay after the coarse
+        estimate from adjacent-pixel cross products.
+
+    Returns
+    -------
+    FringeEstimates
+        The group delay is unambiguous within +-1 / (2 |d sigma|) of zero
+        (d sigma the mean wavenumber step). SNR = |S| / sqrt(sum var), S the
+        coherent flux summed over pixels after removing the group delay; for
+        pure noise it is about 1.3 (Rayleigh mean).
+    """
+    c = np.asarray(ft_coherent, complex)
+    wave = np.asarray(ft_wave, float)
+    var = np.asarray(ft_coherent_var, float)
+    if c.ndim != 3 or c.shape[-1] != wave.size or wave.size < 2:
+        raise ValueError(f"ft_coherent must be (ft_frame, baseline, ft_wave) with ft_wave of "
+                         f"length {wave.size} >= 2, found shape {c.shape}")
+    if var.shape != c.shape:
+        raise ValueError(f"ft_coherent_var shape {var.shape} differs from ft_coherent {c.shape}")
+    sigma = 1.0 / wave
+    if not (np.all(np.diff(sigma) > 0) or np.all(np.diff(sigma) < 0)):
+        raise ValueError("ft_wave must be strictly monotonic")
+    sigma0 = sigma.mean()
+    cross = np.sum(c[..., 1:] * np.conj(c[..., :-1]), axis=-1)
+    gd = -np.angle(cross) / (2 * np.pi * np.mean(np.diff(sigma)))
+    weight = np.abs(c) ** 2
+    for _ in range(n_refine):
+        rot = c * np.exp(2j * np.pi * sigma * gd[..., None])
+        psi = np.angle(rot * np.conj(rot.sum(-1))[..., None])
+        wsum = np.maximum(weight.sum(-1, keepdims=True), np.finfo(float).tiny)
+        ds = sigma - (weight * sigma).sum(-1, keepdims=True) / wsum
+        den = np.maximum((weight * ds ** 2).sum(-1), np.finfo(float).tiny)
+        gd = gd - (weight * ds * psi).sum(-1) / (2 * np.pi * den)
+    s = np.sum(c * np.exp(2j * np.pi * (sigma - sigma0) * gd[..., None]), axis=-1)
+    noise = np.sqrt(np.maximum(var.sum(-1), np.finfo(float).tiny))
+    return FringeEstimates(phase=np.angle(s), group_delay=gd, snr=np.abs(s) / noise,
+                           wave_ref=float(1.0 / sigma0))
+
+
+def track_opd(phase, group_delay, *, wave_ref: float, window: int = 25) -> np.ndarray:
+    """Residual path r_j - r_i of every FT frame from its phase and group delay.
+
+    The phase is unwrapped in time; its whole number of fringes is the one that
+    brings it closest to the group delay, both smoothed by a running median
+    over ``window`` frames (the group delay is noisier than the phase but
+    unambiguous).
+
+    Parameters
+    ----------
+    phase : array_like, shape (n_ft, n_base), rad, at wavenumber 1 / wave_ref
+    group_delay : array_like, shape (n_ft, n_base), m
+    wave_ref : float, m
+    window : int, frames (odd is best)
+
+    Returns
+    -------
+    opd : ndarray, shape (n_ft, n_base), m, such that phase = -2 pi opd / wave_ref mod 2 pi
+    """
+    if window < 1:
+        raise ValueError(f"window must be >= 1 frame, found {window}")
+    opd_phase = -np.unwrap(np.asarray(phase, float), axis=0) * wave_ref / (2 * np.pi)
+    offset = np.asarray(group_delay, float) - opd_phase
+    smooth = median_filter(offset, size=(window, 1), mode="nearest")
+    return opd_phase + np.rint(smooth / wave_ref) * wave_ref
+
+
+def flag_ft_frames(snr, group_delay, opd, *, wave_ref: float, baselines, triangles,
+                   snr_min: float = 3.0, max_group_delay: float = 5e-6, window: int = 25,
+                   guard: int = 10) -> np.ndarray:
+    """Flag FT frames affected by lock losses or fringe jumps.
+
+    Parameters
+    ----------
+    snr, group_delay, opd : array_like, shape (n_ft, n_base); group_delay and opd in m
+        (``opd`` from :func:`track_opd`)
+    wave_ref : float, m
+    baselines : sequence of (i, j), length n_base
+    triangles : sequence of (i, j, k), i < j < k
+    snr_min : float, lock-loss threshold on the FT SNR
+    max_group_delay : float, m; a larger distance of the group delay from its
+        median over the exposure is a lock loss
+    window : int, frames of the running median used to find the fringe tracked
+    guard : int, frames flagged on each side of a lock loss or fringe change
+        (the tracker needs a few frames to re-lock)
+
+    Returns
+    -------
+    flags : ndarray, shape (n_ft, n_base), uint8, OR of FLAG_* bits (0 = good)
+    """
+    snr = np.asarray(snr, float)
+    gd = np.asarray(group_delay, float)
+    opd = np.asarray(opd, float)
+    flags = np.zeros(snr.shape, np.uint8)
+    if snr.shape[0] == 0:
+        return flags
+
+    def widen(mask):
+        return maximum_filter1d(mask.astype(np.uint8), size=2 * guard + 1, axis=0) > 0
+
+    flags |= np.where(widen(~(snr >= snr_min)), FLAG_LOW_SNR, 0).astype(np.uint8)
+    excursion = np.abs(gd - np.nanmedian(gd, axis=0)) > max_group_delay
+    flags |= np.where(widen(excursion), FLAG_GD_EXCURSION, 0).astype(np.uint8)
+    fringe = np.rint(median_filter(opd, size=(window, 1), mode="nearest") / wave_ref)
+    usual = np.array([_mode(f) for f in fringe.T])
+    change = np.zeros(fringe.shape, bool)
+    change[1:] = fringe[1:] != fringe[:-1]
+    jump = (fringe != usual) | widen(change)
+    flags |= np.where(jump, FLAG_FRINGE_JUMP, 0).astype(np.uint8)
+    base_index = {tuple(b): n for n, b in enumerate(baselines)}
+    for i, j, k in triangles:
+        bij, bjk, bik = base_index[(i, j)], base_index[(j, k)], base_index[(i, k)]
+        closure = opd[:, bij] + opd[:, bjk] - opd[:, bik]
+        bad = widen(np.abs(closure - np.median(closure)) > 0.5 * wave_ref)
+        for b in (bij, bjk, bik):
+            flags[:, b] |= np.where(bad, FLAG_CLOSURE, 0).astype(np.uint8)
+    return flags
+
+
+def _mode(values):
+    vals, counts = np.unique(values, return_counts=True)
+    return vals[np.argmax(counts)]
+
+
+def frame_windows(sample_time, frame_start, frame_exp):
+    """Index range of the samples inside each science frame.
+
+    Parameters
+    ----------
+    sample_time : array_like, shape (n_sample,), s, increasing (e.g. FT frame mid-times)
+    frame_start, frame_exp : array_like, shape (n_frame,), s
+
+    Returns
+    -------
+    lo, hi : ndarray, shape (n_frame,), int; samples ``lo:hi`` satisfy
+        start <= t < start + exp
+    """
+    t = np.asarray(sample_time, float)
+    start = np.asarray(frame_start, float)
+    return (np.searchsorted(t, start, side="left"),
+            np.searchsorted(t, start + np.asarray(frame_exp, float), side="left"))
+
+
+def _window_sum(values, lo, hi):
+    cs = np.concatenate([np.zeros((1,) + values.shape[1:]), np.cumsum(values, axis=0)])
+    return cs[hi] - cs[lo]
+
+
+def window_fraction(mask, lo, hi):
+    """Fraction of True samples of ``mask`` (n_sample, ...) inside each window.
+
+    Returns an array (n_frame, ...); an empty window gives 1.0 (nothing to trust).
+    """
+    m = np.asarray(mask, bool).astype(float)
+    n = (np.asarray(hi) - np.asarray(lo)).reshape((-1,) + (1,) * (m.ndim - 1))
+    s = _window_sum(m, lo, hi)
+    return np.where(n > 0, s / np.maximum(n, 1), 1.0)
+
+
+def window_mean(values, sample_time, frame_start, frame_exp):
+    """Mean of a sampled series over each science frame.
+
+    Frames with no sample inside take the value linearly interpolated at their
+    mid-time (the series is slow, e.g. metrology paths).
+
+    Parameters
+    ----------
+    values : array_like, shape (n_sample, n_col)
+    sample_time : array_like, shape (n_sample,), s, increasing
+    frame_start, frame_exp : array_like, shape (n_frame,), s
+
+    Returns
+    -------
+    ndarray, shape (n_frame, n_col)
+    """
+    v = np.asarray(values, float)
+    t = np.asarray(sample_time, float)
+    if v.ndim != 2 or v.shape[0] != t.size or t.size == 0:
+        raise ValueError(f"values must be (sample, column) with {t.size} >= 1 samples, "
+                         f"found shape {v.shape}")
+    lo, hi = frame_windows(t, frame_start, frame_exp)
+    n = (hi - lo)[:, None]
+    mid = np.asarray(frame_start, float) + 0.5 * np.asarray(frame_exp, float)
+    interp = np.stack([np.interp(mid, t, col) for col in v.T], axis=-1)
+    return np.where(n > 0, _window_sum(v, lo, hi) / np.maximum(n, 1), interp)
+
+
+def mean_phasor(opd, lo, hi, wave):
+    """Mean phasor <exp(-2 pi i opd / lambda)> over each science frame.
+
+    Parameters
+    ----------
+    opd : array_like, shape (n_ft, n_base), m (residual path r_j - r_i per FT frame)
+    lo, hi : array_like, shape (n_frame,), int, FT frames of each science frame
+        (:func:`frame_windows`)
+    wave : array_like, shape (n_wave,), m, science wavelengths
+
+    Returns
+    -------
+    phasor : ndarray, shape (n_frame, n_base, n_wave), complex128; NaN for a
+        frame without FT samples. ``abs(phasor)`` is the contrast loss, its
+        argument the mean FT phase scaled to each wavelength
+        ((lambda_ft / lambda) phi_ft, phi_ft unwrapped in time).
+    """
+    opd = np.asarray(opd, float)
+    k = -2 * np.pi / np.asarray(wave, float)
+    out = np.full((len(lo), opd.shape[1], k.size), np.nan + 0j)
+    for f, (a, b) in enumerate(zip(lo, hi)):       # loop over science frames only
+        if b > a:
+            out[f] = np.exp(1j * opd[a:b, :, None] * k).mean(axis=0)
+    return out
+
+
+def dual_field_delay(hour_angle_sc, hour_angle_ft, metrology_path, *, dec_sc_rad: float,
+                     dec_ft_rad: float, station_enu_m, latitude_rad: float, baselines):
+    """D_ij = (w_j - w_i)(s_sc) - (w_j - w_i)(s_ft) + PATH_j - PATH_i per time.
+
+    Parameters
+    ----------
+    hour_angle_sc, hour_angle_ft : array_like, shape (n_time,), rad, of the
+        science and fringe-tracker pointings
+    metrology_path : array_like, shape (n_time, n_tel), m
+    dec_sc_rad, dec_ft_rad : float, rad
+    station_enu_m : array_like, shape (n_tel, 3), m (East, North, Up)
+    latitude_rad : float
+    baselines : sequence of (i, j), length n_base
+
+    Returns
+    -------
+    delay : ndarray, shape (n_time, n_base), m
+
+    Notes
+    -----
+    w_i = P_i . s is the ``w`` coordinate of the station vector
+    (``pipeline.geometry.uvw_from_enu``, Thompson, Moran & Swenson ch. 4).
+    """
+    p = np.asarray(station_enu_m, float)
+    w_sc = uvw_from_enu(p, hour_angle_sc, dec_sc_rad, latitude_rad)[..., 2]
+    w_ft = uvw_from_enu(p, hour_angle_ft, dec_ft_rad, latitude_rad)[..., 2]
+    per_tel = w_sc - w_ft + np.asarray(metrology_path, float)
+    b = np.asarray(baselines, int)
+    return per_tel[:, b[:, 1]] - per_tel[:, b[:, 0]]
+
+
+def reference_coherent(coherent, phasor, delay, wave):
+    """Reference science coherent fluxes on the FT and the dual-field delay.
+
+    Parameters
+    ----------
+    coherent : array_like, shape (n_frame, n_pol, n_base, n_wave), complex
+    phasor : array_like, shape (n_frame, n_base, n_wave), complex (:func:`mean_phasor`)
+    delay : array_like, shape (n_frame, n_base), m (:func:`dual_field_delay`)
+    wave : array_like, shape (n_wave,), m
+
+    Returns
+    -------
+    ndarray, shape of ``coherent``, complex128:
+        coherent * exp(+2 pi i delay / lambda) * conj(phasor) / |phasor|;
+        NaN where the phasor is zero or NaN. The amplitude is unchanged.
+    """
+    m = np.asarray(phasor, complex)
+    a = np.abs(m)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        unit = np.where(a > 0, np.conj(m) / a, np.nan)
+    rot = unit * np.exp(2j * np.pi * np.asarray(delay, float)[..., None] / np.asarray(wave, float))
+    return np.asarray(coherent, complex) * rot[:, None]
