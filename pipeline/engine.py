@@ -1,0 +1,457 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""The reduction engine: plan every stage, key every product, run what is not current.
+
+1. Parameters are loaded and checked (``pipeline.config``) and the night's
+   headers read (``pipeline.inventory``) before any pixel is touched.
+2. Each stage of ``recipes.STAGES`` plans its units from the inventory and the
+   upstream units; each unit gets a content key (``pipeline.keys``).
+3. A Dask graph holds one task per unit that is not current; current products
+   are reused. Tasks never raise: a failing unit writes a failure record and
+   returns it, and every dependent unit fails with "upstream ... failed", so one
+   bad file fails its own branch while the rest of the night finishes.
+4. Scheduler: ``threads`` (default), ``processes`` or a dask.distributed address.
+
+The engine knows nothing of physics.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import os
+import socket
+import sys
+import time
+import traceback
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from . import __version__
+from .config import DEFAULT_CONFIG, load_params
+from .errors import BadInput, ConfigError, NothingToDo, TwinfieldError
+from .inventory import Inventory
+from .keys import params_json, unit_key
+from .stage import Inputs, Unit
+from .store import (ProductView, failure_path, is_complete, product_path, products_of,
+                    read_failure, write_failure, write_product)
+
+__all__ = ["Plan", "PlannedUnit", "RunSummary", "Locked", "MissingCalibrations",
+           "build_plan", "reduce", "rerun", "status", "STATE_FILE", "LOG_FILE", "LOCK_FILE"]
+
+STATE_FILE, LOG_FILE, LOCK_FILE = "twinfield.json", "twinfield.log", "twinfield.lock"
+log = logging.getLogger("twinfield")
+
+
+class Locked(TwinfieldError):
+    """Another reduction holds the work directory."""
+
+
+class MissingCalibrations(TwinfieldError):
+    """Strict mode: calibrations are missing at plan time."""
+
+
+@dataclass
+class PlannedUnit:
+    stage: str
+    unit: Unit
+    key: str
+    path: Path
+    raw_ids: list
+    upstream: dict                  # role -> (stage, label)
+    error: str | None = None        # planning problem (fails the unit without running)
+
+    @property
+    def id(self) -> tuple[str, str]:
+        return (self.stage, self.unit.label)
+
+
+@dataclass
+class Plan:
+    night_dir: str
+    workdir: Path
+    inventory: Inventory
+    params: dict
+    stages: list
+    units: dict = field(default_factory=dict)     # (stage, label) -> PlannedUnit, graph order
+
+    def state(self, pu: PlannedUnit) -> str:
+        """current | failed | stale | missing."""
+        if is_complete(pu.path):
+            return "current"
+        if failure_path(self.workdir, pu.stage, pu.unit.label, pu.key).is_file():
+            return "failed"
+        if products_of(self.workdir, pu.stage, pu.unit.label):
+            return "stale"
+        return "missing"
+
+    def dependents(self, ids) -> set:
+        """``ids`` and every unit downstream of them."""
+        out = set(ids)
+        for uid, pu in self.units.items():          # graph order: one pass suffices
+            if any(up in out for up in pu.upstream.values()):
+                out.add(uid)
+        return out
+
+
+@dataclass
+class RunSummary:
+    computed: list = field(default_factory=list)   # (stage, label)
+    reused: list = field(default_factory=list)
+    failed: list = field(default_factory=list)     # (stage, label, message)
+    bad_files: list = field(default_factory=list)  # (path, problem)
+    seconds: float = 0.0
+
+    @property
+    def exit_code(self) -> int:
+        return 1 if self.failed or self.bad_files else 0
+
+    def text(self) -> str:
+        lines = [f"{len(self.computed)} product(s) computed, {len(self.reused)} reused, "
+                 f"{len(self.failed)} failed, {len(self.bad_files)} unreadable file(s) "
+                 f"in {self.seconds:.1f} s"]
+        lines += [f"  UNREADABLE {p}: {m}" for p, m in self.bad_files]
+        lines += [f"  FAILED {s}/{l}: {m}" for s, l, m in self.failed]
+        return "\n".join(lines)
+
+
+def _stages():
+    import recipes
+    return list(recipes.STAGES)
+
+
+def _instrument_hash() -> str:
+    from .instrument import DEFAULT_INSTRUMENT
+    return hashlib.sha256(Path(DEFAULT_INSTRUMENT).read_bytes()).hexdigest()
+
+
+def config_files(extra=None) -> list[Path]:
+    files = [DEFAULT_CONFIG] if DEFAULT_CONFIG.is_file() else []
+    return files + [Path(p).resolve() for p in (extra or [])]
+
+
+def build_plan(night_dir, workdir, *, config=None, stages=None) -> Plan:
+    """Check parameters, read the headers, plan and key every unit of every stage.
+
+    Raises ConfigError (bad parameters) and BadInput (no night directory)."""
+    stages = _stages() if stages is None else list(stages)
+    params = load_params(stages, config_files(config))
+    inventory = Inventory.scan(night_dir)
+    plan = Plan(inventory.night_dir, Path(workdir).resolve(), inventory, params, stages)
+    ids = {r.path: r.identity for r in inventory.records}
+    bad = dict(inventory.bad)
+    salt = {"@instrument": _instrument_hash()}
+    for stage in stages:
+        upstream = {}
+        for (sname, _), pu in plan.units.items():
+            upstream.setdefault(sname, []).append(pu.unit)
+        try:
+            units = list(stage.plan(inventory, params[stage.name], upstream) or [])
+        except TwinfieldError:
+            raise
+        except Exception as exc:
+            raise ConfigError(f"recipes/{stage.name}.py",
+                              f"plan() failed: {type(exc).__name__}: {exc}") from exc
+        for unit in units:
+            error, raw_ids = None, []
+            for p in unit.raw:
+                p = str(Path(p).resolve())
+                if p in ids:
+                    raw_ids.append(ids[p])
+                else:
+                    raw_ids.append((p, "unreadable"))
+                    error = error or f"{p}: {bad.get(p, 'not a readable raw file of this night')}"
+            up_keys = dict(salt)
+            upstream_ids = {}
+            for role, (sname, label) in dict(unit.needs).items():
+                up = plan.units.get((sname, label))
+                upstream_ids[role] = (sname, label)
+                if up is None:
+                    error = error or f"needs {sname}/{label}, which is not planned"
+                    up_keys[role] = "absent"
+                else:
+                    up_keys[role] = up.key
+            key = unit_key(stage.name, stage.version, params[stage.name], unit.label,
+                           unit.meta, raw_ids, up_keys)
+            uid = (stage.name, unit.label)
+            if uid in plan.units:
+                raise ConfigError(f"recipes/{stage.name}.py",
+                                  f"plan() returned label {unit.label!r} twice")
+            plan.units[uid] = PlannedUnit(stage.name, unit, key,
+                                          product_path(plan.workdir, stage.name, unit.label, key),
+                                          raw_ids, upstream_ids, error)
+    return plan
+
+
+# -- execution of one unit (runs in a worker: threads, processes or distributed) -------------
+
+def _execute(spec: dict, upstream: dict) -> dict:
+    stage_name, unit, key = spec["stage"], spec["unit"], spec["key"]
+    workdir = Path(spec["workdir"])
+    t0 = time.perf_counter()
+    prov = {"stage": stage_name, "label": unit.label, "key": key}
+    failed_up = [f"{r['stage']}/{r['label']}" for r in upstream.values() if r["state"] == "failed"]
+    try:
+        if spec["error"]:
+            raise _UnitError(spec["error"])
+        if failed_up:
+            raise _UnitError(f"upstream {', '.join(failed_up)} failed")
+        stage = {s.name: s for s in _stages()}[stage_name]
+        from .instrument import load_instrument
+        from .rawio import RawExposure
+        inputs = Inputs(unit=unit, raw=[RawExposure(p) for p in unit.raw],
+                        products={role: ProductView(r["path"]) for role, r in upstream.items()},
+                        instrument=load_instrument(), workdir=workdir)
+        skipped = ""
+        try:
+            outputs = stage.run(inputs, spec["params"]) or {}
+        except NothingToDo as exc:
+            outputs, skipped = {}, str(exc) or "nothing to do"
+        finally:
+            for view in inputs.products.values():
+                view.close()
+        prov.update({
+            "version": spec["version"], "params": params_json(spec["params"]),
+            "unit_meta": json.dumps(dict(unit.meta), default=repr),
+            "raw_files": json.dumps(list(unit.raw)),
+            "raw_identities": json.dumps(spec["raw_ids"]),
+            "input_keys": json.dumps({r: u["key"] for r, u in upstream.items()}),
+            "input_paths": json.dumps({r: u["path"] for r, u in upstream.items()}),
+            "code_version": __version__,
+            "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            "skipped": skipped})
+        path = write_product(spec["path"], outputs, prov)
+        failure_path(workdir, stage_name, unit.label, key).unlink(missing_ok=True)
+        return {**prov, "state": "computed", "path": str(path), "message": skipped,
+                "seconds": time.perf_counter() - t0}
+    except Exception as exc:
+        if isinstance(exc, _UnitError):
+            message, tb = str(exc), ""
+        elif isinstance(exc, BadInput):
+            message, tb = str(exc), traceback.format_exc()
+        else:
+            message = f"{type(exc).__name__}: {exc}"
+            tb = traceback.format_exc()
+        try:
+            write_failure(workdir, stage_name, unit.label, key, message,
+                          {**prov, "traceback": tb})
+        except OSError:
+            pass
+        return {**prov, "state": "failed", "path": "", "message": message, "traceback": tb,
+                "seconds": time.perf_counter() - t0}
+
+
+class _UnitError(Exception):
+    """A unit that cannot run (planning problem, failed upstream)."""
+
+
+# -- the work directory: state file, lock, log --------------------------------------------
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+class _WorkLock:
+    def __init__(self, workdir: Path):
+        self.path = workdir / LOCK_FILE
+        self.owned = False
+
+    def __enter__(self):
+        me = {"pid": os.getpid(), "host": socket.gethostname(), "since": time.time()}
+        for _ in range(2):
+            try:
+                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+            except FileExistsError:
+                try:
+                    other = json.loads(self.path.read_text())
+                except (OSError, ValueError):
+                    other = {}
+                if other.get("host") == me["host"] and not _pid_alive(int(other.get("pid", 0))):
+                    self.path.unlink(missing_ok=True)        # left by a killed run
+                    continue
+                raise Locked(f"{self.path.parent}: another reduction (pid {other.get('pid')} on "
+                             f"{other.get('host')}) is using this work directory; wait for it or "
+                             f"remove {self.path} if it is gone") from None
+            with os.fdopen(fd, "w") as fh:
+                json.dump(me, fh)
+            self.owned = True
+            return self
+        raise Locked(f"{self.path}: could not take the lock")
+
+    def __exit__(self, *exc):
+        if self.owned:
+            self.path.unlink(missing_ok=True)
+
+
+def _start_log(workdir: Path, debug: bool):
+    handler = logging.FileHandler(workdir / LOG_FILE)
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s",
+                                           "%Y-%m-%dT%H:%M:%S"))
+    log.addHandler(handler)
+    log.setLevel(logging.DEBUG if debug else logging.INFO)
+    return handler
+
+
+def _save_state(workdir: Path, night_dir: str, config) -> None:
+    state = {"night_dir": night_dir, "config": [str(Path(c).resolve()) for c in config or []],
+             "code_version": __version__}
+    tmp = workdir / (STATE_FILE + ".tmp")
+    tmp.write_text(json.dumps(state, indent=1))
+    os.replace(tmp, workdir / STATE_FILE)
+
+
+def load_state(workdir) -> dict:
+    path = Path(workdir) / STATE_FILE
+    try:
+        return json.loads(path.read_text())
+    except FileNotFoundError:
+        raise ConfigError(path, "not a twinfield work directory (no state file); run "
+                                "`twinfield reduce NIGHT -o WORK` first") from None
+    except ValueError as exc:
+        raise ConfigError(path, f"unreadable state file: {exc}") from None
+
+
+# -- running the graph ---------------------------------------------------------------------
+
+def _compute(tasks: list, scheduler: str, workers: int | None, progress: bool) -> list:
+    import dask
+    if scheduler.startswith("tcp://") or scheduler.startswith("tls://"):
+        from distributed import Client, progress as dist_progress
+        with Client(scheduler) as client:
+            futures = client.compute(tasks)
+            if progress:
+                dist_progress(futures)
+            return client.gather(futures)
+    if scheduler not in ("threads", "processes", "synchronous"):
+        raise ConfigError("--scheduler", f"expected threads, processes or tcp://HOST:PORT, "
+                                         f"found {scheduler!r}")
+    kw = {"scheduler": scheduler}
+    if workers:
+        kw["num_workers"] = workers
+    if progress:
+        from dask.diagnostics import ProgressBar
+        with ProgressBar():
+            return list(dask.compute(*tasks, **kw))
+    return list(dask.compute(*tasks, **kw))
+
+
+def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None,
+           force=(), debug=False, progress=None) -> RunSummary:
+    """Reduce a night into ``workdir``; returns the summary (never raises for a unit).
+
+    Raises
+    ------
+    ConfigError, BadInput (no night), Locked, MissingCalibrations (strict inventory)
+    """
+    import dask
+    t0 = time.perf_counter()
+    workdir = Path(workdir).resolve()
+    workdir.mkdir(parents=True, exist_ok=True)
+    progress = sys.stderr.isatty() if progress is None else progress
+    with _WorkLock(workdir):
+        handler = _start_log(workdir, debug)
+        try:
+            plan = build_plan(night_dir, workdir, config=config)
+            stage_names = [s.name for s in plan.stages]
+            for name in force:
+                if name not in stage_names:
+                    raise ConfigError("--force", f"no stage {name!r}; stages are {stage_names}")
+            _save_state(workdir, plan.night_dir, config)
+            for tmp in workdir.glob("*/.*.tmp"):     # left by a killed run: never trusted
+                tmp.unlink(missing_ok=True)
+            log.info("reduce %s -> %s (twinfield %s, scheduler %s)", plan.night_dir, workdir,
+                     __version__, scheduler)
+            problems = plan.inventory.problems()
+            for path, msg in plan.inventory.bad:
+                log.error("unreadable raw file %s: %s", path, msg)
+            for path, msg in problems:
+                log.warning("missing calibration for %s: %s", path, msg)
+            inv_params = plan.params.get("inventory")
+            if problems and getattr(inv_params, "strict", False):
+                raise MissingCalibrations(f"{len(problems)} missing calibration(s) and strict "
+                                          f"inventory: {problems[0][0]}: {problems[0][1]}")
+            forced = plan.dependents({uid for uid in plan.units if uid[0] in force})
+            summary = RunSummary(bad_files=list(plan.inventory.bad))
+            values, tasks = {}, []
+            for uid, pu in plan.units.items():
+                if uid not in forced and pu.error is None and is_complete(pu.path):
+                    values[uid] = {"stage": pu.stage, "label": pu.unit.label, "key": pu.key,
+                                   "state": "reused", "path": str(pu.path)}
+                    summary.reused.append(uid)
+                    log.info("reuse %s/%s %s", pu.stage, pu.unit.label, pu.key)
+                    continue
+                spec = {"stage": pu.stage, "unit": pu.unit, "key": pu.key, "path": str(pu.path),
+                        "params": plan.params[pu.stage], "version": _version_of(plan, pu.stage),
+                        "raw_ids": pu.raw_ids, "workdir": str(workdir), "error": pu.error}
+                up = {role: values[ref] for role, ref in pu.upstream.items() if ref in values}
+                task = dask.delayed(_execute, pure=False)(
+                    spec, up, dask_key_name=f"{pu.stage}:{pu.unit.label}:{pu.key[:8]}")
+                values[uid] = task
+                tasks.append((uid, task))
+            results = _compute([t for _, t in tasks], scheduler, workers, progress) if tasks else []
+            for (uid, _), res in zip(tasks, results):
+                if res["state"] == "failed":
+                    summary.failed.append((uid[0], uid[1], res["message"]))
+                    log.error("FAILED %s/%s %s: %s", uid[0], uid[1], res["key"], res["message"])
+                    if res.get("traceback") and debug:
+                        log.debug(res["traceback"])
+                else:
+                    summary.computed.append(uid)
+                    log.info("computed %s/%s %s in %.2f s%s", uid[0], uid[1], res["key"],
+                             res["seconds"], f" (skipped: {res['message']})"
+                             if res["message"] else "")
+            summary.seconds = time.perf_counter() - t0
+            log.info("summary: %s", summary.text().replace("\n", " |"))
+            return summary
+        finally:
+            log.removeHandler(handler)
+            handler.close()
+
+
+def _version_of(plan: Plan, stage_name: str) -> str:
+    return next(s.version for s in plan.stages if s.name == stage_name)
+
+
+def rerun(workdir, stage: str, **kw) -> RunSummary:
+    """Recompute ``stage`` and everything downstream of it; reuse the rest."""
+    state = load_state(workdir)
+    return reduce(state["night_dir"], workdir, config=state["config"] or None, force=(stage,),
+                  **kw)
+
+
+def status(workdir) -> list[dict]:
+    """Every planned product with its state: dicts (stage, name, key, state, path)."""
+    state = load_state(workdir)
+    plan = build_plan(state["night_dir"], workdir, config=state["config"] or None)
+    rows = [{"stage": "inventory", "name": Path(p).name, "key": "", "state": "failed",
+             "path": p} for p, _ in plan.inventory.bad]
+    for pu in plan.units.values():
+        rows.append({"stage": pu.stage, "name": pu.unit.label, "key": pu.key,
+                     "state": plan.state(pu), "path": str(pu.path)})
+    return rows
+
+
+def failure_message(workdir, stage, label, key) -> str | None:
+    return read_failure(workdir, stage, label, key)
+
+
+def plan_report(plan: Plan) -> str:
+    """``twinfield plan`` text: the inventory report and the units of every stage."""
+    lines = [plan.inventory.report(), "", "Products to make:"]
+    by_stage = {}
+    for pu in plan.units.values():
+        by_stage.setdefault(pu.stage, []).append(pu)
+    for stage in plan.stages:
+        units = by_stage.get(stage.name, [])
+        lines.append(f"  {stage.name:<10s} {len(units):4d} unit(s)  {stage.doc}")
+        for pu in units:
+            if pu.error:
+                lines.append(f"      {pu.unit.label}: CANNOT RUN: {pu.error}")
+    return "\n".join(lines)
+
