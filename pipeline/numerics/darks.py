@@ -7,8 +7,8 @@ memory stays bounded by one chunk whatever the number of frames. The same
 kernels serve the science detector (pixel axes (y, x)) and the fringe-tracker
 channel (pixel axes (output, ft_wave)).
 
-Method: a robust first pass (per-chunk median and MAD, combined by the median
-over chunks) followed by a kappa-sigma clipped mean about that centre (the
+Method: robust first passes (per-chunk median, combined by the median over
+chunks; then the median absolute deviation about it) followed by a kappa-sigma clipped mean about that centre (the
 classical sigma-clipping estimator; e.g. Stetson 1987, PASP 99, 191 for its use
 on CCD stacks). The per-pixel temporal noise comes from differences of
 consecutive frames, which cancel the fixed pattern (bias and dark level) and
@@ -22,17 +22,25 @@ invalid in ``valid``.
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 from typing import Callable, Iterable
 
 import numpy as np
 
-__all__ = ["DarkResult", "robust_centre", "clipped_stack", "difference_noise",
+__all__ = ["DarkResult", "robust_centre", "robust_scale", "clipped_stack", "difference_noise",
            "bad_pixel_masks", "master_dark"]
 
 _MAD_TO_SIGMA = 1.482602218505602  # 1 / Phi^-1(3/4), Gaussian consistency of the MAD
 
 ChunkSource = Callable[[], Iterable[np.ndarray]]
+
+
+def _nanmedian(a, axis=None):
+    """np.nanmedian without the all-NaN warning (such pixels are NaN by policy)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmedian(a, axis=axis)
 
 
 @dataclass(frozen=True)
@@ -69,8 +77,8 @@ class DarkResult:
     n_clipped: int
 
 
-def robust_centre(chunks: Iterable[np.ndarray]) -> tuple[np.ndarray, np.ndarray, int]:
-    """Robust per-pixel centre and scale of a frame stack, one chunk at a time.
+def robust_centre(chunks: Iterable[np.ndarray]) -> tuple[np.ndarray, int]:
+    """Robust per-pixel centre of a frame stack, one chunk at a time.
 
     Parameters
     ----------
@@ -79,30 +87,37 @@ def robust_centre(chunks: Iterable[np.ndarray]) -> tuple[np.ndarray, np.ndarray,
     Returns
     -------
     centre : ndarray, shape pixel_shape, float64, ADU
-        Median over chunks of the per-chunk median.
-    scale : ndarray, shape pixel_shape, float64, ADU
-        Median over chunks of the per-chunk MAD scaled to a Gaussian sigma; for
-        chunks of one frame (no MAD possible) NaN.
+        Median over chunks of the per-chunk median (NaN samples ignored).
     n_frame : int
     """
-    medians, scales, n_frame = [], [], 0
+    medians, n_frame = [], 0
     for chunk in chunks:
         chunk = np.asarray(chunk, dtype=np.float64)
         if chunk.shape[0] == 0:
             continue
         n_frame += chunk.shape[0]
-        med = np.nanmedian(chunk, axis=0) if chunk.shape[0] > 1 else chunk[0]
-        medians.append(med)
-        if chunk.shape[0] > 2:
-            scales.append(_MAD_TO_SIGMA * np.nanmedian(np.abs(chunk - med), axis=0))
+        medians.append(_nanmedian(chunk, axis=0))
     if n_frame == 0:
         raise ValueError("robust_centre: no frames")
-    centre = np.nanmedian(np.stack(medians), axis=0) if len(medians) > 1 else medians[0]
-    if scales:
-        scale = np.nanmedian(np.stack(scales), axis=0) if len(scales) > 1 else scales[0]
-    else:
-        scale = np.full(centre.shape, np.nan)
-    return centre, scale, n_frame
+    return _nanmedian(np.stack(medians), axis=0), n_frame
+
+
+def robust_scale(chunks: Iterable[np.ndarray], centre: np.ndarray) -> np.ndarray:
+    """Robust per-pixel scatter about a known centre, one chunk at a time.
+
+    The median absolute deviation from ``centre`` (fixed, so small chunks add
+    little bias), per chunk, median over chunks, scaled to a Gaussian sigma; at
+    least the median of that over pixels (a pixel's own estimate from few
+    frames is noisy, and must not clip ordinary samples).
+
+    Returns
+    -------
+    scale : ndarray, shape pixel_shape, float64, ADU
+    """
+    mads = [_nanmedian(np.abs(np.asarray(c, dtype=np.float64) - centre), axis=0)
+            for c in chunks if len(c)]
+    scale = _MAD_TO_SIGMA * (_nanmedian(np.stack(mads), axis=0) if len(mads) > 1 else mads[0])
+    return np.fmax(scale, _nanmedian(scale))
 
 
 def clipped_stack(chunks: Iterable[np.ndarray], centre: np.ndarray, scale: np.ndarray, *,
@@ -114,7 +129,8 @@ def clipped_stack(chunks: Iterable[np.ndarray], centre: np.ndarray, scale: np.nd
     ----------
     chunks : iterable of ndarray, each shape (n_frame_chunk, *pixel_shape), ADU
     centre, scale : ndarray, shape pixel_shape, ADU
-        From :func:`robust_centre`. Where ``scale`` is NaN nothing is clipped.
+        From :func:`robust_centre` and :func:`robust_scale`. Where ``scale`` is
+        NaN nothing is clipped.
     kappa : float
         Rejection threshold in units of ``scale``.
     scale_floor : float, ADU
@@ -211,8 +227,8 @@ def bad_pixel_masks(master: np.ndarray, noise: np.ndarray, *, dit: float,
     """
     if dit <= 0:
         raise ValueError(f"dit must be positive, found {dit}")
-    level = np.nanmedian(master)
-    typical_noise = np.nanmedian(noise)
+    level = _nanmedian(master)
+    typical_noise = _nanmedian(noise)
     dark_rate = (master - level) / dit
     finite = np.isfinite(master) & np.isfinite(noise)
     with np.errstate(invalid="ignore"):
@@ -226,7 +242,7 @@ def bad_pixel_masks(master: np.ndarray, noise: np.ndarray, *, dit: float,
 def master_dark(source: ChunkSource, *, dit: float, kappa: float = 5.0,
                 hot_rate: float = 50.0, low_level: float = 100.0, noisy_factor: float = 5.0,
                 quiet_factor: float = 0.2, scale_floor: float = 0.5) -> DarkResult:
-    """Master dark, noise map and masks from a stack streamed in chunks (three passes).
+    """Master dark, noise map and masks from a stack streamed in chunks (four passes).
 
     Parameters
     ----------
@@ -240,7 +256,8 @@ def master_dark(source: ChunkSource, *, dit: float, kappa: float = 5.0,
     -------
     DarkResult
     """
-    centre, scale, n_frame = robust_centre(source())
+    centre, n_frame = robust_centre(source())
+    scale = robust_scale(source(), centre)
     master, _, n_clipped = clipped_stack(source(), centre, scale, kappa=kappa,
                                          scale_floor=scale_floor)
     if n_frame < 2:
