@@ -42,7 +42,8 @@ from typing import Literal
 import numpy as np
 
 from pipeline.numerics.binary_model import (BASELINES, TRIANGLES, binary_observables,
-                                            grid_chi2, wrap)
+                                            flux_ratio_law, grid_chi2, wrap)
+from pipeline.skymodel import MAS, binary_visibility
 from pipeline.numerics.ellipse import ErrorEllipse, SepPA, correlation, error_ellipse, sep_pa
 
 __all__ = ["FLAGS", "Observables", "BinaryFitResult", "fit_binary", "search_grid",
@@ -194,6 +195,36 @@ def _residual_factory(obs, *, fibre_fwhm_mas, diameters, vis2, t3phi, visphi, we
     return residual, int(ok2.sum() + okt.sum() + (okp.sum() if okp is not None else 0))
 
 
+def _primary_grid(obs, params, ch, *, step, radius, fibre_fwhm_mas):
+    """Primary offset (mas) minimising the referenced-phase chi-square on a grid, the
+    companion's relative position and flux ratio held at ``params``."""
+    axis = np.arange(-np.ceil(radius / step), np.ceil(radius / step) + 1) * step
+    xx, yy = np.meshgrid(axis, axis)
+    keep = np.hypot(xx, yy) <= radius
+    x1, y1 = xx[keep], yy[keep]
+    w = np.where(np.isfinite(obs.visphi) & (obs.visphi_err > 0),
+                 1 / np.where(obs.visphi_err > 0, obs.visphi_err, 1) ** 2, 0)[..., ch]
+    z = (w * np.exp(1j * np.where(w > 0, obs.visphi[..., ch], 0))).sum(0)   # (baseline, wave)
+    uvw = np.asarray(obs.uvw, float).reshape(-1, len(obs.baselines), 3).mean(0)
+    wave = np.asarray(obs.wave)[ch]
+    bw = None if obs.bandwidth is None else np.asarray(obs.bandwidth)[ch]
+    p = params.valuesdict()
+    chi2 = np.empty(x1.size)
+    chunk = max(1, 2_000_000 // z.size)
+    for s in range(0, x1.size, chunk):
+        sl = slice(s, s + chunk)
+        vis = binary_visibility(
+            uvw[:, 0, None], uvw[:, 1, None], wave, dx_rad=p["dra"] * MAS,
+            dy_rad=p["ddec"] * MAS, flux_ratio=flux_ratio_law(wave, p["flux_ratio"],
+                                                              p["flux_slope"]),
+            x1_rad=x1[sl, None, None] * MAS, y1_rad=y1[sl, None, None] * MAS, bandwidth_m=bw,
+            fibre_fwhm_rad_at_2p2um=None if fibre_fwhm_mas is None else fibre_fwhm_mas * MAS)
+        cos_res = (vis.real * z.real + vis.imag * z.imag) / np.maximum(np.abs(vis), 1e-300)
+        chi2[sl] = -cos_res.sum((-1, -2))
+    best = int(np.argmin(chi2))
+    return float(x1[best]), float(y1[best])
+
+
 def _params(dra, ddec, ratio, *, radius, ratio_max, fit_slope, has_phase):
     import lmfit
     p = lmfit.Parameters()
@@ -215,7 +246,7 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
                step_fraction: float = 0.25, flux_ratios=None, flux_ratio_max: float = 1.5,
                fit_slope: bool = False, diameters_mas=(0.0, 0.0), n_start: int = 5,
                n_boot: int = 50, search_max_channels: int = 32, ambiguous_dchi2: float = 10.0,
-               chi2_red_range=(0.2, 5.0), bootstrap: Literal["auto", "channels", "none"] = "auto",
+               chi2_red_range=(0.25, 3.0), bootstrap: Literal["auto", "channels", "none"] = "auto",
                seed: int = 0) -> BinaryFitResult:
     """Fit a binary to one exposure's observables.
 
@@ -274,15 +305,31 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
     iy, ix = _local_minima(chi2_map, n_start)
     minima = np.column_stack([gx[ix], gy[iy], chi2_map[iy, ix]])
 
-    kw = dict(radius=search_radius_mas, ratio_max=flux_ratio_max, fit_slope=fit_slope,
-              has_phase=obs.has_phase)
-    residual, ndata = _residual_factory(
-        obs, fibre_fwhm_mas=fibre_fwhm_mas, diameters=diameters_mas, vis2=obs.vis2,
-        t3phi=obs.t3phi, visphi=obs.visphi, weight=np.ones(nw))
+    kw = dict(radius=search_radius_mas, ratio_max=flux_ratio_max, fit_slope=fit_slope)
+    rkw = dict(fibre_fwhm_mas=fibre_fwhm_mas, diameters=diameters_mas, vis2=obs.vis2,
+               t3phi=obs.t3phi, weight=np.ones(nw))
+    residual, ndata = _residual_factory(obs, visphi=obs.visphi, **rkw)
     nfree = 3 + int(fit_slope) + 2 * int(obs.has_phase)
     if ndata <= nfree:
         raise FitFailed("binary fit", n_points=ndata, n_free=nfree)
-    fits = [_refine(residual, _params(gx[x], gy[y], ratio_map[y, x], **kw)) for y, x in zip(iy, ix)]
+    # Stage 1: V2 and closure phases only (blind to the primary's offset but for the
+    # fibre and smearing envelopes), primary at the phase centre.
+    res_amp, _ = _residual_factory(obs, visphi=None, **rkw)
+    fits = [_refine(res_amp, _params(gx[x], gy[y], ratio_map[y, x], has_phase=False, **kw))
+            for y, x in zip(iy, ix)]
+    if obs.has_phase:
+        # Stage 2: the primary's offset from a grid of referenced-phase chi-square (the
+        # phases wrap within a few mas), then every parameter refined on all data.
+        starts = []
+        for f in fits:
+            p = _params(f.params["dra"].value, f.params["ddec"].value,
+                        f.params["flux_ratio"].value, has_phase=True, **kw)
+            p["flux_slope"].value = f.params["flux_slope"].value
+            x1, y1 = _primary_grid(obs, f.params, ch, step=step, radius=search_radius_mas,
+                                   fibre_fwhm_mas=fibre_fwhm_mas)
+            p["primary_dra"].value, p["primary_ddec"].value = x1, y1
+            starts.append(p)
+        fits = [_refine(residual, p) for p in starts]
     fits.sort(key=lambda f: f.chisqr)
     best = fits[0]
     bp = best.params
