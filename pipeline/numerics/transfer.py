@@ -35,7 +35,7 @@ from scipy.special import jv
 
 from pipeline.skymodel import MAS, uniform_disk_visibility
 
-__all__ = ["uniform_disk_vis2", "transfer_function", "interpolate_in_time",
+__all__ = ["uniform_disk_vis2", "transfer_function", "interpolate_in_time", "interpolation_weights",
            "interpolate_phase_in_time", "calibrate_vis2", "calibrate_phase", "wrap_phase"]
 
 
@@ -83,8 +83,14 @@ def transfer_function(measured, measured_err, expected, expected_err):
     return t, terr
 
 
-def _bracket(t_cal, t_sci, method):
-    """Indices (lo, hi) and weight a of hi, per science time; shapes (n_sci,)."""
+def interpolation_weights(t_cal, t_sci, *, method: Literal["linear", "nearest"] = "linear"):
+    """Calibrators used at each science time and their weights.
+
+    Returns
+    -------
+    lo, hi : ndarray of int, shape (n_sci,), indices into the sorted ``t_cal``
+    a : ndarray, shape (n_sci,), weight of ``hi`` (``lo`` gets 1 - a)
+    """
     t_cal = np.asarray(t_cal, float)
     t_sci = np.atleast_1d(np.asarray(t_sci, float))
     if t_cal.ndim != 1 or t_cal.size == 0:
@@ -125,7 +131,7 @@ def interpolate_in_time(t_cal, values, errors, t_sci, *,
     if method not in ("linear", "nearest"):
         raise ValueError(f"method must be 'linear' or 'nearest', found {method!r}")
     vals, errs = np.asarray(values, float), np.asarray(errors, float)
-    lo, hi, a = _bracket(t_cal, t_sci, method)
+    lo, hi, a = interpolation_weights(t_cal, t_sci, method=method)
     a = a.reshape(a.shape + (1,) * (vals.ndim - 1))
     v = (1 - a) * vals[lo] + a * vals[hi]
     e2 = (1 - a) ** 2 * errs[lo] ** 2 + a ** 2 * errs[hi] ** 2
@@ -141,7 +147,7 @@ def interpolate_phase_in_time(t_cal, phases, errors, t_sci, *,
     if method not in ("linear", "nearest"):
         raise ValueError(f"method must be 'linear' or 'nearest', found {method!r}")
     ph, errs = np.asarray(phases, float), np.asarray(errors, float)
-    lo, hi, a = _bracket(t_cal, t_sci, method)
+    lo, hi, a = interpolation_weights(t_cal, t_sci, method=method)
     a = a.reshape(a.shape + (1,) * (ph.ndim - 1))
     v = ph[lo] + a * wrap_phase(ph[hi] - ph[lo])
     e2 = (1 - a) ** 2 * errs[lo] ** 2 + a ** 2 * errs[hi] ** 2
