@@ -39,7 +39,8 @@ from .stage import Array
 __all__ = ["header_facts", "exposure_uvw", "average_product", "calibrate_product",
            "oifits_observations", "exposure_seed", "OutputsView", "array_for"]
 
-_PB, _PT, _PTEL = ("pol", "baseline", "wave"), ("pol", "triangle", "wave"), ("pol", "telescope", "wave")
+_PB, _PT = ("pol", "baseline", "wave"), ("pol", "triangle", "wave")
+_PTEL = ("pol", "telescope", "wave")
 
 
 def exposure_seed(label: str, seed: int) -> int:
@@ -82,7 +83,8 @@ def average_product(extract, reference, header, instrument, *, label: str, n_boo
     facts = header_facts(header)
     coherent = reference["coherent_ref"]
     valid = reference["frame_valid"] if "frame_valid" in reference else None
-    loss = reference["contrast_loss"] if use_contrast_loss and "contrast_loss" in reference else None
+    loss = (reference["contrast_loss"]
+            if use_contrast_loss and "contrast_loss" in reference else None)
     wave = np.asarray(extract["wave"], float)
     s = exposure_seed(label, seed)
     try:
@@ -109,6 +111,7 @@ def average_product(extract, reference, header, instrument, *, label: str, n_boo
         vis2_cov=Array(res.vis2_cov, cov_w, "", "bootstrap covariance between wavelengths"),
         t3phi=Array(res.t3phi, _PT, "rad", "closure phase, arg <C_ij C_jk conj(C_ik)>"),
         t3phi_err=Array(res.t3phi_err, _PT, "rad"),
+        t3phi_cov=Array(res.t3phi_cov, ("pol", "triangle", "wave", "wave2"), "rad2"),
         t3amp=Array(res.t3amp, _PT, ""), t3amp_err=Array(res.t3amp_err, _PT, ""),
         visamp=Array(res.visamp, _PB, "", "coherently averaged visibility amplitude"),
         visamp_err=Array(res.visamp_err, _PB, ""),
@@ -193,6 +196,8 @@ def calibrate_product(science, calibrators, *, science_path: str = "", method: s
     v2cov = v2cov + _diag(v2 * T2e / T2)
     pcov = (science["visphi_cov"] + (1 - a) ** 2 * cals[lo]["visphi_cov"]
             + a ** 2 * cals[hi]["visphi_cov"])
+    tcov = (science["t3phi_cov"] + (1 - a) ** 2 * cals[lo]["t3phi_cov"]
+            + a ** 2 * cals[hi]["t3phi_cov"])
     out = {k: science[k] for k in ("flux", "flux_err", "uvw", "wave", "band", "n_valid")}
     out = {k: Array(v, tuple(science.axes(k)) if hasattr(science, "axes") else _axes(k),
                     _unit(science, k)) for k, v in out.items()}
@@ -204,6 +209,7 @@ def calibrate_product(science, calibrators, *, science_path: str = "", method: s
         visphi=Array(vp, _PB, "rad", "referenced phase minus the calibrators' zero-point"),
         visphi_err=Array(vpe, _PB, "rad"), visphi_cov=Array(pcov, cov_w, "rad2"),
         t3phi=Array(tp, _PT, "rad"), t3phi_err=Array(tpe, _PT, "rad"),
+        t3phi_cov=Array(tcov, ("pol", "triangle", "wave", "wave2"), "rad2"),
         t3amp=Array(ta, _PT, ""), t3amp_err=Array(tae, _PT, ""),
         tf_vis2=Array(T2, _PB, "", "transfer function at the science time"),
         tf_vis2_err=Array(T2e, _PB, ""),
@@ -233,7 +239,8 @@ def _unit(view, name):
     try:
         return view.unit(name)
     except (AttributeError, KeyError):
-        return {"flux": "e-/s", "flux_err": "e-/s", "uvw": "m", "wave": "m", "band": "m"}.get(name, "")
+        units = {"flux": "e-/s", "flux_err": "e-/s", "uvw": "m", "wave": "m", "band": "m"}
+        return units.get(name, "")
 
 
 def oifits_observations(product, *, label: str = "", category: str = "SCI",
@@ -243,7 +250,8 @@ def oifits_observations(product, *, label: str = "", category: str = "SCI",
     n_pol = product["vis2"].shape[0]
     obs = []
     for p in range(n_pol):
-        ins = f"{instrument_name}_{a['setup']}_{a['polmode']}" + (f"_P{p + 1}" if n_pol > 1 else "")
+        ins = f"{instrument_name}_{a['setup']}_{a['polmode']}"
+        ins += f"_P{p + 1}" if n_pol > 1 else ""
         obs.append(OiObservation(
             target=str(a["object"]), ra_deg=float(a["ra_deg"]), dec_deg=float(a["dec_deg"]),
             date_obs=str(a["date_obs"]), mjd=float(a["mjd"]), int_time_s=float(a["int_time_s"]),

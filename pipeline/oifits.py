@@ -63,7 +63,8 @@ class OiArray:
         """Build from the instrument model; ``station_names`` from the header's
         STATIONn (defaults to the model's stations in order)."""
         by_name = {s.name: np.asarray(s.enu_m, float) for s in instrument.stations}
-        names = tuple(station_names) if station_names else tuple(s.name for s in instrument.stations)
+        names = (tuple(station_names) if station_names
+                 else tuple(s.name for s in instrument.stations))
         missing = [n for n in names if n not in by_name]
         if missing:
             raise ValueError(f"stations {missing} are not in the instrument model "

@@ -40,7 +40,8 @@ def plan(inventory: Inventory, params: AverageParams, upstream) -> list[Unit]:
 def run(inputs, params: AverageParams) -> dict:
     prods = inputs.products
     wavecal = prods.get("wavecal")
-    band = wavecal["bandwidth_grid"] if wavecal is not None and "bandwidth_grid" in wavecal else None
+    band = (wavecal["bandwidth_grid"]
+            if wavecal is not None and "bandwidth_grid" in wavecal else None)
     return average_product(prods["extract"], prods["reference"], inputs.raw[0].header,
                            inputs.instrument, label=inputs.unit.label, n_boot=params.n_boot,
                            seed=params.seed, use_contrast_loss=params.use_contrast_loss,

@@ -34,9 +34,9 @@ frames valid on that baseline):
 Errors: standard deviation over ``n_boot`` bootstrap resamples of the frames
 (Efron & Tibshirani 1993, An Introduction to the Bootstrap, Chapman & Hall),
 drawn from ``numpy.random.default_rng(seed)``; phases are wrapped about the
-full-sample value first. The covariance between wavelengths of V2 and of the
-referenced phase is returned as well (common residual piston makes the phases
-strongly correlated across the band).
+full-sample value first. The covariances between wavelengths of V2, of the
+referenced phase and of the closure phase are returned as well (a common
+residual piston makes the phases strongly correlated across the band).
 
 Mask policy: ``frame_valid`` (True = use) removes frames per baseline; a
 triangle uses the frames valid on its three baselines. Non-finite inputs in
@@ -70,6 +70,7 @@ class ExposureAverage:
     vis2, vis2_err : (n_pol, n_base, n_wave), dimensionless, bias-corrected
     vis2_cov : (n_pol, n_base, n_wave, n_wave), bootstrap covariance of vis2
     t3phi, t3phi_err : (n_pol, n_tri, n_wave), radians, in (-pi, pi]
+    t3phi_cov : (n_pol, n_tri, n_wave, n_wave), radians^2
     t3amp, t3amp_err : (n_pol, n_tri, n_wave), dimensionless
     visamp, visamp_err : (n_pol, n_base, n_wave), dimensionless (coherent average)
     visphi, visphi_err : (n_pol, n_base, n_wave), radians, in (-pi, pi]
@@ -83,6 +84,7 @@ class ExposureAverage:
     vis2_cov: np.ndarray
     t3phi: np.ndarray
     t3phi_err: np.ndarray
+    t3phi_cov: np.ndarray
     t3amp: np.ndarray
     t3amp_err: np.ndarray
     visamp: np.ndarray
@@ -253,7 +255,7 @@ def average_exposure(coherent, coherent_var, flux, *, frame_valid=None, contrast
 
     return ExposureAverage(
         vis2=v2[0], vis2_err=err(v2), vis2_cov=cov(v2),
-        t3phi=t3phi[0], t3phi_err=err(t3phi, True),
+        t3phi=t3phi[0], t3phi_err=err(t3phi, True), t3phi_cov=cov(t3phi, True),
         t3amp=t3amp[0], t3amp_err=err(t3amp),
         visamp=visamp[0], visamp_err=err(visamp),
         visphi=visphi[0], visphi_err=err(visphi, True), visphi_cov=cov(visphi, True),

@@ -35,8 +35,9 @@ from scipy.special import jv
 
 from pipeline.skymodel import MAS, uniform_disk_visibility
 
-__all__ = ["uniform_disk_vis2", "transfer_function", "interpolate_in_time", "interpolation_weights",
-           "interpolate_phase_in_time", "calibrate_vis2", "calibrate_phase", "wrap_phase"]
+__all__ = ["uniform_disk_vis2", "transfer_function", "interpolate_in_time",
+           "interpolation_weights", "interpolate_phase_in_time", "calibrate_vis2",
+           "calibrate_phase", "wrap_phase"]
 
 
 def wrap_phase(phi):
