@@ -196,7 +196,7 @@ def _execute(spec: dict, upstream: dict) -> dict:
             raise _UnitError(spec["error"])
         if failed_up:
             raise _UnitError(f"upstream {', '.join(failed_up)} failed")
-        stage = {s.name: s for s in _stages()}[stage_name]
+        stage = spec["stage_obj"]
         from .instrument import load_instrument
         from .rawio import RawExposure
         inputs = Inputs(unit=unit, raw=[RawExposure(p) for p in unit.raw],
@@ -342,7 +342,7 @@ def _compute(tasks: list, scheduler: str, workers: int | None, progress: bool) -
 
 
 def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None,
-           force=(), debug=False, progress=None) -> RunSummary:
+           force=(), debug=False, progress=None, stages=None) -> RunSummary:
     """Reduce a night into ``workdir``; returns the summary (never raises for a unit).
 
     Raises
@@ -357,7 +357,7 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
     with _WorkLock(workdir):
         handler = _start_log(workdir, debug)
         try:
-            plan = build_plan(night_dir, workdir, config=config)
+            plan = build_plan(night_dir, workdir, config=config, stages=stages)
             stage_names = [s.name for s in plan.stages]
             for name in force:
                 if name not in stage_names:
@@ -386,9 +386,11 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
                     summary.reused.append(uid)
                     log.info("reuse %s/%s %s", pu.stage, pu.unit.label, pu.key)
                     continue
-                spec = {"stage": pu.stage, "unit": pu.unit, "key": pu.key, "path": str(pu.path),
-                        "params": plan.params[pu.stage], "version": _version_of(plan, pu.stage),
-                        "raw_ids": pu.raw_ids, "workdir": str(workdir), "error": pu.error}
+                stage = _stage_of(plan, pu.stage)
+                spec = {"stage": pu.stage, "stage_obj": stage, "unit": pu.unit, "key": pu.key,
+                        "path": str(pu.path), "params": plan.params[pu.stage],
+                        "version": stage.version, "raw_ids": pu.raw_ids, "workdir": str(workdir),
+                        "error": pu.error}
                 up = {role: values[ref] for role, ref in pu.upstream.items() if ref in values}
                 task = dask.delayed(_execute, pure=False)(
                     spec, up, dask_key_name=f"{pu.stage}:{pu.unit.label}:{pu.key[:8]}")
@@ -414,8 +416,8 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
             handler.close()
 
 
-def _version_of(plan: Plan, stage_name: str) -> str:
-    return next(s.version for s in plan.stages if s.name == stage_name)
+def _stage_of(plan: Plan, stage_name: str):
+    return next(s for s in plan.stages if s.name == stage_name)
 
 
 def rerun(workdir, stage: str, **kw) -> RunSummary:
@@ -425,10 +427,11 @@ def rerun(workdir, stage: str, **kw) -> RunSummary:
                   **kw)
 
 
-def status(workdir) -> list[dict]:
+def status(workdir, *, stages=None) -> list[dict]:
     """Every planned product with its state: dicts (stage, name, key, state, path)."""
     state = load_state(workdir)
-    plan = build_plan(state["night_dir"], workdir, config=state["config"] or None)
+    plan = build_plan(state["night_dir"], workdir, config=state["config"] or None,
+                      stages=stages)
     rows = [{"stage": "inventory", "name": Path(p).name, "key": "", "state": "failed",
              "path": p} for p, _ in plan.inventory.bad]
     for pu in plan.units.values():

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import warnings
 from functools import cached_property, lru_cache
 from pathlib import Path
 
@@ -125,8 +126,11 @@ class RawExposure:
         """Headers and data locations of every HDU; checks the file is complete."""
         layout = {}
         try:
-            with fits.open(self.path, memmap=True, lazy_load_hdus=False,
-                           do_not_scale_image_data=True) as hdul:
+            with warnings.catch_warnings():   # truncation is reported below as BadInput
+                warnings.simplefilter("ignore")
+                hdul = fits.open(self.path, memmap=True, lazy_load_hdus=False,
+                                 do_not_scale_image_data=True)
+            with hdul:
                 for i, hdu in enumerate(hdul):
                     info = hdu.fileinfo()
                     name = "PRIMARY" if i == 0 else hdu.header.get("EXTNAME", f"HDU{i}")
