@@ -191,9 +191,12 @@ def calibrate_product(science, calibrators, *, science_path: str = "", method: s
     ta, tae = transfer_function(science["t3amp"], science["t3amp_err"], TT, TTe)
     vp, vpe = calibrate_phase(science["visphi"], science["visphi_err"], ZV, ZVe)
     tp, tpe = calibrate_phase(science["t3phi"], science["t3phi_err"], ZT, ZTe)
-    inv = 1.0 / T2
-    v2cov = science["vis2_cov"] * inv[..., :, None] * inv[..., None, :]
-    v2cov = v2cov + _diag(v2 * T2e / T2)
+    # covariance between wavelengths: science term plus the interpolated transfer-function
+    # covariance (calibrator bootstrap + diameter error, the latter fully correlated)
+    tf_covs = [_outer_div(c["vis2_cov"], e[1]) + _outer(t * e[2] / e[1])
+               for c, e, t in zip(cals, exp, tf2)]
+    tf_cov = (1 - a) ** 2 * tf_covs[lo] + a ** 2 * tf_covs[hi]
+    v2cov = _outer_div(science["vis2_cov"], T2) + _outer(v2) * _outer_div(tf_cov, T2)
     pcov = (science["visphi_cov"] + (1 - a) ** 2 * cals[lo]["visphi_cov"]
             + a ** 2 * cals[hi]["visphi_cov"])
     tcov = (science["t3phi_cov"] + (1 - a) ** 2 * cals[lo]["t3phi_cov"]
@@ -224,10 +227,14 @@ def calibrate_product(science, calibrators, *, science_path: str = "", method: s
     return out
 
 
-def _diag(err):
-    """(..., wave) errors -> (..., wave, wave) diagonal variances."""
-    n = err.shape[-1]
-    return np.eye(n) * (err ** 2)[..., None]
+def _outer(x):
+    """(..., wave) -> (..., wave, wave) outer product x_w x_w'."""
+    return x[..., :, None] * x[..., None, :]
+
+
+def _outer_div(cov, x):
+    """cov_ww' / (x_w x_w')."""
+    return cov / _outer(x)
 
 
 def _axes(name):

@@ -90,6 +90,11 @@ def test_point_source_calibrates_to_unity(rng, instrument, tmp_path):
     assert np.all(np.abs(v["visphi"]) < 4 * v["visphi_err"])
     assert np.all(np.abs(v["visamp"] - 1) < 4 * v["visamp_err"])
     assert v["vis2_cov"].shape == (1, 6, 5, 5)
+    # the covariance's diagonal is the propagated variance (same first-order model)
+    np.testing.assert_allclose(np.diagonal(v["vis2_cov"], axis1=-2, axis2=-1),
+                               v["vis2_err"] ** 2, rtol=1e-6)
+    np.testing.assert_allclose(np.diagonal(v["visphi_cov"], axis1=-2, axis2=-1),
+                               v["visphi_err"] ** 2, rtol=1e-6)
     assert json.loads(v.attrs["calibrators"]) == ["CAL A-61000.1", "CAL A-61000.2"]
     # exported and read back by the independent oifits package
     import oifits
