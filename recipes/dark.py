@@ -15,15 +15,17 @@ class DarkParams:
     kappa: float = 5.0                # clipping threshold, robust sigmas
     hot_rate_adu_s: float = 20.0      # science hot pixel: dark rate above typical, ADU/s
     ft_hot_rate_adu_s: float = 5000.0 # fringe-tracker hot pixel, ADU/s (1 ms frames)
+    hot_sigma: float = 5.0            # ... and excess above hot_sigma x spatial scatter
     dead_low_adu: float = 100.0       # dead: master below typical level by this, ADU
     noisy_factor: float = 5.0         # noisy: temporal noise above this x median noise
     quiet_factor: float = 0.2         # dead: temporal noise below this x median noise
+    false_alarm: float = 1e-6         # per-pixel chance of flagging an ordinary pixel
     frames_per_chunk: int = 32        # science frames read at a time (bounded memory)
     ft_frames_per_chunk: int = 4096   # fringe-tracker frames read at a time
 
     def __post_init__(self):
         for f in fields(self):
-            if not getattr(self, f.name) > 0:
+            if not getattr(self, f.name) > 0 or f.name == "false_alarm" and self.false_alarm >= 0.5:
                 raise ValueError(f"dark parameter {f.name} must be positive, "
                                  f"found {getattr(self, f.name)!r}")
 
@@ -49,8 +51,9 @@ def run(inputs, params: DarkParams) -> dict:
                   for b in raw.ft_counts(params.ft_frames_per_chunk).blocks]
         axes, dit, hot = ("output", "ft_wave"), meta["period"], params.ft_hot_rate_adu_s
     res = master_dark(lambda: (b.compute(scheduler="synchronous") for b in blocks), dit=dit,
-                      kappa=params.kappa, hot_rate=hot, low_level=params.dead_low_adu,
-                      noisy_factor=params.noisy_factor, quiet_factor=params.quiet_factor)
+                      kappa=params.kappa, hot_rate=hot, hot_sigma=params.hot_sigma,
+                      low_level=params.dead_low_adu, noisy_factor=params.noisy_factor,
+                      quiet_factor=params.quiet_factor, false_alarm=params.false_alarm)
     return {"master": Array(res.master, axes, "adu", "clipped mean dark, bias included"),
             "read_noise": Array(res.read_noise, axes, "adu", "temporal noise of one frame"),
             "dark_rate": Array(res.dark_rate, axes, "adu/s", "dark rate above typical level"),

@@ -33,6 +33,7 @@ __all__ = ["DarkResult", "robust_centre", "robust_scale", "clipped_stack", "diff
 
 _MAD_TO_SIGMA = 1.482602218505602  # 1 / Phi^-1(3/4), Gaussian consistency of the MAD
 
+_MIN_PAIRS_QUIET = 8
 ChunkSource = Callable[[], Iterable[np.ndarray]]
 
 
@@ -178,6 +179,7 @@ def difference_noise(chunks: Iterable[np.ndarray], scale: np.ndarray, *,
     -------
     noise : ndarray, shape pixel_shape, float64, ADU
         ``sqrt(mean(d**2) / 2)`` over kept pairs; NaN with no pair.
+    n_pair : ndarray, shape pixel_shape, int64, pairs kept
     """
     limit = kappa * np.sqrt(2.0) * np.fmax(scale, scale_floor)
     limit = np.where(np.isnan(scale), np.inf, limit)
@@ -197,51 +199,72 @@ def difference_noise(chunks: Iterable[np.ndarray], scale: np.ndarray, *,
     if sumsq is None:
         raise ValueError("difference_noise: no frames")
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(count > 0, np.sqrt(sumsq / np.maximum(count, 1) / 2.0), np.nan)
+        noise = np.where(count > 0, np.sqrt(sumsq / np.maximum(count, 1) / 2.0), np.nan)
+    return noise, count
 
 
-def bad_pixel_masks(master: np.ndarray, noise: np.ndarray, *, dit: float,
-                    hot_rate: float, low_level: float, noisy_factor: float,
-                    quiet_factor: float) -> tuple[np.ndarray, ...]:
+def bad_pixel_masks(master: np.ndarray, noise: np.ndarray, n_pair: np.ndarray, *, dit: float,
+                    hot_rate: float, hot_sigma: float, low_level: float, noisy_factor: float,
+                    quiet_factor: float, false_alarm: float) -> tuple[np.ndarray, ...]:
     """Classify pixels from the master dark and the noise map.
 
     Parameters
     ----------
     master, noise : ndarray, shape pixel_shape, ADU
+    n_pair : ndarray or int, frame pairs behind each noise estimate
     dit : float, s, integration of one dark frame
     hot_rate : float, ADU/s
-        Hot: dark rate above the typical level by more than this.
+        Hot: dark rate above the typical level by more than this ...
+    hot_sigma : float
+        ... and an excess above the typical level larger than ``hot_sigma`` times
+        the robust spatial scatter of the master (bias pattern plus the noise of
+        the mean), so that an excess too small to measure at this DIT is not flagged.
     low_level : float, ADU
-        Dead: master below the typical level by more than this (a dead pixel
-        reads a fixed low value).
-    noisy_factor : float
-        Noisy: temporal noise above ``noisy_factor`` times the median noise.
-    quiet_factor : float
-        Dead: temporal noise below ``quiet_factor`` times the median noise (a
-        dead pixel does not respond, so does not fluctuate).
+        Dead: master below the typical level by more than this (a pixel stuck low).
+    noisy_factor, quiet_factor : float
+        Noisy (dead): temporal noise above ``noisy_factor`` (below ``quiet_factor``)
+        times the median noise, and beyond what ``n_pair`` pairs give by chance
+        with probability ``false_alarm`` (chi-square with ``n_pair`` degrees of
+        freedom for the sum of squared Gaussian differences). The quiet test
+        needs at least 8 pairs: with fewer, integer ADU make a zero noise
+        estimate too likely.
+    false_alarm : float, per-pixel probability of flagging an ordinary pixel
 
     Returns
     -------
     dark_rate : ndarray, float64, ADU/s
     hot, dead, noisy, valid : ndarray of bool (valid: True = usable)
+
+    Notes
+    -----
+    A pixel with no response (dead to light) but normal bias and noise cannot be
+    seen in darks; the flat-field stage finds those.
     """
+    from scipy.stats import chi2
     if dit <= 0:
         raise ValueError(f"dit must be positive, found {dit}")
-    level = _nanmedian(master)
-    typical_noise = _nanmedian(noise)
-    dark_rate = (master - level) / dit
     finite = np.isfinite(master) & np.isfinite(noise)
+    level = _nanmedian(master[finite]) if finite.any() else np.nan
+    typical_noise = _nanmedian(noise[finite]) if finite.any() else np.nan
+    spread = _MAD_TO_SIGMA * _nanmedian(np.abs(master[finite] - level)) if finite.any() else 0.0
+    dark_rate = (master - level) / dit
+    k = np.maximum(np.broadcast_to(n_pair, master.shape), 1)
+    low = np.minimum(quiet_factor, np.sqrt(chi2.ppf(false_alarm, k) / k))
+    # Integer ADU: with few pairs, identical frames (noise exactly 0) happen by chance.
+    low = np.where(k >= _MIN_PAIRS_QUIET, low, 0.0)
+    high = np.maximum(noisy_factor, np.sqrt(chi2.isf(false_alarm, k) / k))
     with np.errstate(invalid="ignore"):
-        hot = finite & (dark_rate > hot_rate)
-        dead = finite & ((master < level - low_level) | (noise < quiet_factor * typical_noise))
-        noisy = finite & ~hot & (noise > noisy_factor * typical_noise)
+        hot = finite & (dark_rate > hot_rate) & (master - level > hot_sigma * spread)
+        dead = finite & ((master < level - low_level) | (noise < low * typical_noise))
+        noisy = finite & ~hot & ~dead & (noise > high * typical_noise)
     valid = finite & ~hot & ~dead & ~noisy
     return dark_rate, hot, dead, noisy, valid
 
 
 def master_dark(source: ChunkSource, *, dit: float, kappa: float = 5.0,
-                hot_rate: float = 50.0, low_level: float = 100.0, noisy_factor: float = 5.0,
-                quiet_factor: float = 0.2, scale_floor: float = 0.5) -> DarkResult:
+                hot_rate: float = 20.0, hot_sigma: float = 5.0, low_level: float = 100.0,
+                noisy_factor: float = 5.0, quiet_factor: float = 0.2,
+                false_alarm: float = 1e-6, scale_floor: float = 0.5) -> DarkResult:
     """Master dark, noise map and masks from a stack streamed in chunks (four passes).
 
     Parameters
@@ -249,7 +272,7 @@ def master_dark(source: ChunkSource, *, dit: float, kappa: float = 5.0,
     source : callable returning an iterator of ndarray (n_frame_chunk, *pixel_shape), ADU
         Called once per pass; each call must yield the same frames in the same order.
     dit : float, s
-    kappa, hot_rate, low_level, noisy_factor, quiet_factor, scale_floor
+    kappa, hot_rate, hot_sigma, low_level, noisy_factor, quiet_factor, false_alarm, scale_floor
         See :func:`clipped_stack` and :func:`bad_pixel_masks`.
 
     Returns
@@ -262,10 +285,11 @@ def master_dark(source: ChunkSource, *, dit: float, kappa: float = 5.0,
                                          scale_floor=scale_floor)
     if n_frame < 2:
         raise ValueError(f"a noise map needs at least 2 dark frames, found {n_frame}")
-    noise = difference_noise(source(), scale, kappa=kappa, scale_floor=scale_floor)
+    noise, n_pair = difference_noise(source(), scale, kappa=kappa, scale_floor=scale_floor)
     dark_rate, hot, dead, noisy, valid = bad_pixel_masks(
-        master, noise, dit=dit, hot_rate=hot_rate, low_level=low_level,
-        noisy_factor=noisy_factor, quiet_factor=quiet_factor)
+        master, noise, n_pair, dit=dit, hot_rate=hot_rate, hot_sigma=hot_sigma,
+        low_level=low_level, noisy_factor=noisy_factor, quiet_factor=quiet_factor,
+        false_alarm=false_alarm)
     return DarkResult(master=master, read_noise=noise, dark_rate=dark_rate, hot=hot, dead=dead,
                       noisy=noisy, valid=valid, n_frame=n_frame, n_clipped=n_clipped)
 
