@@ -28,9 +28,10 @@ def _stages():
 
 
 @pytest.fixture(scope="module")
-def reduced(tiny_night, tmp_path_factory):
+def reduced(request, tmp_path_factory):
     from pipeline.engine import reduce
-    stages = _stages()
+    stages = _stages()                       # skip before simulating the night
+    tiny_night = request.getfixturevalue("tiny_night")
     work = tmp_path_factory.mktemp("work_calibrate")
     summary = reduce(tiny_night, work, stages=stages, progress=False)
     return Path(tiny_night), work, summary
