@@ -145,6 +145,27 @@ def test_frame_selection_and_contrast_loss(rng):
     assert res.vis2_cov.shape == (1, 6, 3, 3)
     np.testing.assert_allclose(np.sqrt(np.diagonal(res.vis2_cov, axis1=-2, axis2=-1)),
                                res.vis2_err, rtol=1e-6)
+    # without the flags the garbage frames pull V2 down; without the contrast-loss
+    # correction V2 comes out as 0.64 * 0.7^2
+    unflagged = average_exposure(c_lost, s2 * 0.49, f, contrast_loss=loss, seed=0)
+    assert np.all(unflagged.vis2 < 0.64 - 5 * res.vis2_err)
+    uncorrected = average_exposure(c_lost, s2 * 0.49, f, frame_valid=valid, seed=0)
+    np.testing.assert_allclose(uncorrected.vis2, 0.64 * 0.49, atol=5 * res.vis2_err.max())
+
+
+def test_fringe_jumps_flagged_restore_coherent_phase(rng):
+    """Frames whose phase jumped by a random amount (fringe jumps) decohere the
+    coherent average; flagging them restores |V| and its phase."""
+    vis = np.full((6, 3), 0.7 * np.exp(0.5j))
+    c, s2, f, _ = _frames(rng, vis, n_frame=100, flux_e=3000.0)
+    jumped = rng.choice(100, 30, replace=False)
+    c[jumped] *= np.exp(1j * rng.uniform(-np.pi, np.pi, (30, 1, 6, 1)))
+    valid = np.ones((100, 6), bool)
+    valid[jumped] = False
+    good = average_exposure(c, s2, f, frame_valid=valid, seed=0)
+    bad = average_exposure(c, s2, f, seed=0)
+    assert np.all(np.abs(good.visamp - 0.7) < 5 * good.visamp_err)
+    assert np.mean(np.abs(bad.visamp - 0.7)) > 5 * np.mean(np.abs(good.visamp - 0.7))
 
 
 def test_nan_policy(rng):
