@@ -1,0 +1,212 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Extraction of one exposure, both channels: raw frames -> fluxes and coherent fluxes.
+
+Science channel, one chunk of frames at a time (memory: one chunk): background
+(sky exposure of the same set-up, polarisation mode and DIT, else the master
+dark) subtracted, converted to electrons, divided by the flat's pixel response;
+bad (dark and flat masks) and saturated pixels excluded; optimal extraction
+with the flat's profiles and resampling to the common wavelength grid
+(``pipeline.numerics.extraction``); P2VM of the channel
+(``pipeline.numerics.coherent_flux``).
+
+Fringe-tracker channel: a lazy dask pipeline over chunks of FT frames
+(dark-subtracted rates and their variance, P2VM of the ``ft`` combiner
+product); the store writes it chunk by chunk.
+
+Products (``upstream`` views) are read by name (DEVELOPERS.md product table);
+anything mapping names to arrays works (tests pass dicts).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .errors import BadInput
+from .numerics.coherent_flux import counts_to_rate, invert_combiner, traces_to_outputs
+from .numerics.darks import master_dark
+from .numerics.extraction import optimal_extract, resample_to_grid
+from .numerics.traces import trace_profiles
+from .stage import Array
+
+__all__ = ["sky_background", "extract_science", "extract_ft", "exposure_facts"]
+
+
+def _where(view, default):
+    return str(getattr(view, "path", default))
+
+
+def _blocks(dask_array):
+    for block in dask_array.blocks:
+        yield np.asarray(block.compute(scheduler="synchronous"), float)
+
+
+def sky_background(raw, *, frames_per_chunk: int = 16, kappa: float = 5.0) -> np.ndarray:
+    """Clipped mean (the master-dark estimator) of a sky exposure's frames, (y, x), ADU (bias and dark included)."""
+    pix = raw.science_pixels(frames_per_chunk)
+    if raw.nframe < 2:
+        raise BadInput(raw.path, "a sky background needs at least 2 frames")
+    return master_dark(lambda: _blocks(pix), dit=raw.dit, kappa=kappa).master
+
+
+def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, background=None,
+                    frames_per_chunk: int = 8, clip: float = 6.0) -> dict:
+    """Fluxes and coherent fluxes of every science frame of ``raw``.
+
+    Parameters
+    ----------
+    raw : pipeline.rawio.RawExposure
+    dark, flat, wavecal, combiner : mappings name -> array (products, DEVELOPERS.md)
+    instrument : pipeline.instrument.Instrument
+    background : ndarray (y, x), ADU, or None
+        Sky background (:func:`sky_background`); None subtracts the master dark.
+    frames_per_chunk : int, frames extracted at once
+    clip : float, cosmic-ray rejection threshold of the optimal extraction, sigmas
+
+    Returns
+    -------
+    dict of Array: ``flux``, ``flux_var`` (frame, pol, telescope, wave) e-/s;
+    ``coherent`` (frame, pol, baseline, wave) complex e-/s; ``coherent_var``
+    (same axes, (e-/s)^2, variance of each of Re and Im); ``wave`` m;
+    ``n_rejected_pixels`` (frame,).
+    """
+    det = instrument.detectors["science"]
+    n_pol = 2 if raw.polmode == "split" else 1
+    p2vm = np.asarray(combiner["p2vm"], float)
+    wave_grid = np.asarray(wavecal["wave_grid"], float)
+    wave_pixel = np.asarray(wavecal["wave_pixel"], float)
+    if p2vm.ndim != 4 or p2vm.shape[:2] != (n_pol, wave_grid.size):
+        raise BadInput(_where(combiner, "combiner"),
+                       f"p2vm of shape {p2vm.shape} does not match {n_pol} polarisation(s) and "
+                       f"the wavelength grid of {wave_grid.size} points")
+    master = np.asarray(dark["master"], float)
+    bg = master if background is None else np.asarray(background, float)
+    rn_e = np.asarray(dark["read_noise"], float) * det.gain_e_per_adu
+    response = np.asarray(flat["pixel_response"], float)
+    good = np.asarray(dark["valid"], bool) & np.asarray(flat["valid"], bool)
+    good &= np.isfinite(bg) & np.isfinite(rn_e) & np.isfinite(response) & (response > 0)
+    response = np.where(good, response, 1.0)
+    trace_y = np.asarray(flat["trace_y"], float)
+    if trace_y.shape[0] != 24 * n_pol or trace_y.shape != wave_pixel.shape:
+        raise BadInput(_where(flat, "flat"),
+                       f"trace_y of shape {trace_y.shape} does not fit {24 * n_pol} traces "
+                       f"and wave_pixel {wave_pixel.shape}")
+    profiles = trace_profiles(trace_y, np.asarray(flat["profile_sigma"], float),
+                              n_y=master.shape[0])
+    # a per-pixel noise map from a few dark frames is itself noisy: never go below the median
+    typical = np.nanmedian(rn_e[good]) if good.any() else np.nanmedian(rn_e)
+    rn_e = np.where(good, np.fmax(rn_e, typical), typical)
+    dit = raw.dit
+    parts = {k: [] for k in ("flux", "flux_var", "coherent", "coherent_var", "n_rej")}
+    for pix in _blocks(raw.science_pixels(frames_per_chunk)):
+        if pix.shape[1:] != master.shape:
+            raise BadInput(raw.path, f"science frames are {pix.shape[1:]}, the dark "
+                                     f"{_where(dark, 'dark')} is {master.shape}")
+        valid = good & (pix < det.saturation_adu) & np.isfinite(pix)
+        e = np.where(valid, (pix - bg) * det.gain_e_per_adu / response, 0.0)
+        ext = optimal_extract(e, profiles, read_noise=rn_e, valid=valid, clip=clip,
+                              nan_policy="mask")
+        spec, var = resample_to_grid(ext.flux, ext.variance, wave_pixel, wave_grid)
+        res = invert_combiner(traces_to_outputs(spec / dit, n_pol), p2vm,
+                              variance=traces_to_outputs(var / dit ** 2, n_pol),
+                              nan_policy="propagate")
+        parts["flux"].append(res.flux)
+        parts["flux_var"].append(res.flux_var)
+        parts["coherent"].append(res.coherent)
+        parts["coherent_var"].append(res.coherent_var)
+        parts["n_rej"].append(ext.n_rejected)
+    cat = {k: np.concatenate(v) for k, v in parts.items()}
+    tel, base = ("frame", "pol", "telescope", "wave"), ("frame", "pol", "baseline", "wave")
+    return {
+        "flux": Array(cat["flux"], tel, "e-/s", "photometric flux per telescope"),
+        "flux_var": Array(cat["flux_var"], tel, "(e-/s)^2"),
+        "coherent": Array(cat["coherent"], base, "e-/s", "coherent flux C_ij"),
+        "coherent_var": Array(cat["coherent_var"], base, "(e-/s)^2",
+                              "variance of each of Re C and Im C"),
+        "wave": Array(wave_grid, ("wave",), "m"),
+        "n_rejected_pixels": Array(cat["n_rej"], ("frame",), "",
+                                   "pixels rejected as outliers (cosmic rays)"),
+        "background": "sky" if background is not None else "dark",
+    }
+
+
+def _ft_block(counts, dark, rn, p2vm, *, gain, period, part):
+    rate, var = counts_to_rate(counts, dark, gain_e_per_adu=gain, read_noise_adu=rn,
+                               dit_s=period)
+    res = invert_combiner(rate[:, None], p2vm, variance=var[:, None], nan_policy="propagate")
+    if part == "flux":
+        return res.flux[:, 0].astype(np.float32)
+    if part == "coherent":
+        return res.coherent[:, 0].astype(np.complex64)
+    return res.coherent_var[:, 0].astype(np.float32)
+
+
+def extract_ft(raw, *, ft_dark, ft_combiner, ft_wave, instrument,
+               ft_frames_per_chunk: int = 4096) -> dict:
+    """Fluxes and coherent fluxes of every fringe-tracker frame, as lazy dask arrays.
+
+    Returns
+    -------
+    dict of Array: ``ft_flux`` (ft_frame, telescope, ft_wave) e-/s;
+    ``ft_coherent`` (ft_frame, baseline, ft_wave) complex64 e-/s;
+    ``ft_coherent_var`` (ft_frame, baseline, ft_wave) (e-/s)^2; ``ft_wave`` m.
+    """
+    det = instrument.detectors[instrument.fringe_tracker.detector]
+    period = float(raw.header["FTPERIOD"])
+    counts = raw.ft_counts(ft_frames_per_chunk)
+    p2vm = np.asarray(ft_combiner["p2vm"], float)
+    ft_wave = np.asarray(ft_wave, float)
+    n_ftw = counts.shape[2]
+    if p2vm.shape != (1, n_ftw, 16, 24) or ft_wave.shape != (n_ftw,):
+        raise BadInput(_where(ft_combiner, "ft combiner"),
+                       f"FT p2vm {p2vm.shape} / wavelengths {ft_wave.shape} do not match the "
+                       f"{n_ftw} FT pixels of {raw.path}")
+    dark = np.asarray(ft_dark["master"], float)
+    rn = np.asarray(ft_dark["read_noise"], float)
+    if dark.shape != counts.shape[1:]:
+        raise BadInput(_where(ft_dark, "ft dark"), f"master {dark.shape} does not match FT "
+                                                   f"counts {counts.shape[1:]} of {raw.path}")
+    out = {}
+    for part, name, axes, dtype, unit in (
+            ("flux", "ft_flux", ("ft_frame", "telescope", "ft_wave"), np.float32, "e-/s"),
+            ("coherent", "ft_coherent", ("ft_frame", "baseline", "ft_wave"), np.complex64, "e-/s"),
+            ("var", "ft_coherent_var", ("ft_frame", "baseline", "ft_wave"), np.float32,
+             "(e-/s)^2")):
+        n = 4 if part == "flux" else 6
+        arr = counts.map_blocks(_ft_block, dark, rn, p2vm, gain=det.gain_e_per_adu,
+                                period=period, part=part, dtype=dtype,
+                                chunks=(counts.chunks[0], (n,), (n_ftw,)))
+        out[name] = Array(arr, axes, unit)
+    out["ft_wave"] = Array(ft_wave, ("ft_wave",), "m")
+    return out
+
+
+def exposure_facts(raw, instrument) -> dict:
+    """Times, metrology, station positions and pointing of one exposure, for the product."""
+    start, exp = raw.frame_times()
+    h = raw.header
+    out = {"frame_start": Array(np.asarray(start, float), ("frame",), "s", "since DATE-OBS"),
+           "frame_exp": Array(np.asarray(exp, float), ("frame",), "s"),
+           "ft_time": Array(np.asarray(raw.ft_time(), float), ("ft_frame",), "s",
+                            "end of each FT frame since DATE-OBS"),
+           "kind": raw.kind, "object": str(h["OBJECT"]), "setup": raw.setup,
+           "polmode": raw.polmode, "dit": raw.dit, "mjd_obs": raw.mjd,
+           "date_obs": str(h["DATE-OBS"]), "ft_period": float(h["FTPERIOD"])}
+    if raw.kind in ("sky", "calibrator", "science"):
+        t, path = raw.metrology()
+        names = {s.name: s.enu_m for s in instrument.stations}
+        stations = [str(h[f"STATION{i}"]) for i in range(1, 5)]
+        unknown = [s for s in stations if s not in names]
+        if unknown:
+            raise BadInput(raw.path, f"header stations {unknown} are not in the instrument model "
+                                     f"({sorted(names)})")
+        out.update({
+            "metrology_time": Array(np.asarray(t, float), ("sample",), "s"),
+            "metrology_path": Array(np.asarray(path, float), ("sample", "telescope"), "m"),
+            "station_enu": Array(np.array([names[s] for s in stations], float),
+                                 ("telescope", "enu"), "m"),
+            "ra_deg": float(h["RA"]), "dec_deg": float(h["DEC"]),
+            "ft_ra_deg": float(h["FTRA"]), "ft_dec_deg": float(h["FTDEC"]),
+            "stations": ",".join(stations)})
+        if raw.kind == "calibrator":
+            out.update({"caldiam_mas": float(h["CALDIAM"]), "caldiam_err_mas": float(h["CALDIAME"])})
+    return out
