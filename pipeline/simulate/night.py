@@ -21,10 +21,10 @@ from astropy.time import Time, TimeDelta
 from ..geometry import hour_angle_rad, uvw_from_enu
 from ..instrument import Instrument, load_instrument
 from ..skymodel import MAS
-from .combine import detected
+from .combine import detected, detected_polar
 from .detector import make_detector, read_out, trace_profiles
 from .scenario import Exposure, Scenario, load_scenario
-from .sky import coupled_sky, field_components, planck_photon_shape, star_photon_density
+from .sky import Component, coupled_sky, field_components, planck_photon_shape, star_photon_density
 from .truth_instrument import draw_combiner, ft_channel, science_channel
 from .turbulence import injection, residuals
 from .writer import write_exposure
@@ -35,7 +35,7 @@ SCAN_RATIOS = np.array([0.0, 1 / 7, 3 / 7, 1.0])
 """Scan speed of beams 1..4 relative to beam 4: baseline OPD speeds 1..7 /7, all distinct."""
 SIDEREAL_RATE = 2 * np.pi * 1.00273781191 / 86400.0   # rad of hour angle per second of UTC
 N_SUB_T = 4                                            # time samples per fringe-tracker frame
-COARSE_WAVE = np.linspace(1.85e-6, 2.55e-6, 48)        # grid of frame-averaged phasors
+COARSE_WAVE = np.linspace(1.85e-6, 2.55e-6, 36)        # grid of frame-averaged phasors
 ARCSEC = np.pi / 180 / 3600
 
 
@@ -284,26 +284,32 @@ def _simulate_exposure(w: _World, p: Planned, night: Path, seed: int) -> dict:
         bg, ftbg = w.background(wave), w.background(ftwave)
         flux_rel = coupled_sky(comps, wave, 0.0, 0.0, w.fibre_fwhm)[0] if comps else 0.0
         # FT star: a point (or disk) at the FT fibre centre
-        ft_comps = [] if e.kind == "sky" else [
-            type(comps[0])(1.0, 0.0, 0.0, 0.0)]
+        ft_comps = [] if e.kind == "sky" else [Component(1.0, 0.0, 0.0)]
         ft_flux_rel, ft_coh_rel = (coupled_sky(ft_comps, ftwave, uvw_ft[ft.baseline, 0][:, None, None],
                                                uvw_ft[ft.baseline, 1][:, None, None], w.fibre_fwhm)
                                    if ft_comps else (0.0, 0.0))
         i_, j_ = pair[:, 0], pair[:, 1]
         gain_frames = []
+        bl = np.array(inst.combiner.baselines)
+        # per fringe-tracker frame: mean injection, mean and variance of each baseline's
+        # residual over the N_SUB_T samples inside the frame (Gaussian contrast loss)
+        rho_ms = rho.reshape(n_ft, N_SUB_T, 4).mean(1)
+        drs = (r[:, bl[:, 1]] - r[:, bl[:, 0]]).reshape(n_ft, N_SUB_T, 6)
+        dr_ms, dv_ms = drs.mean(1), drs.var(1)
+        ftbl = ft.baseline
 
         def sci_light(f0, f1):
             nf = f1 - f0
             rho_f = np.empty((nf, 4))
             gamma = np.empty((nf, 6, COARSE_WAVE.size), complex)
-            bl = np.array(inst.combiner.baselines)
             for k, f in enumerate(range(f0, f1)):
-                a, b = int(round(t_start[f] / dt)), int(round((t_start[f] + e.dit) / dt))
-                rr, rh = r[a:b], rho[a:b]
+                a = int(round(t_start[f] / period))
+                b = int(round((t_start[f] + e.dit) / period))
+                rh = rho_ms[a:b]
                 rho_f[k] = rh.mean(0)
-                amp = np.sqrt(rh[:, bl[:, 0]] * rh[:, bl[:, 1]])                # (s, 6)
-                dr = rr[:, bl[:, 1]] - rr[:, bl[:, 0]]
-                ph = np.exp(-2j * np.pi * dr[:, :, None] / COARSE_WAVE)
+                amp = np.sqrt(rh[:, bl[:, 0]] * rh[:, bl[:, 1]])                # (ms, 6)
+                ph = np.exp(-2j * np.pi * dr_ms[a:b, :, None] / COARSE_WAVE
+                            - 2 * np.pi ** 2 * dv_ms[a:b, :, None] / COARSE_WAVE ** 2)
                 gamma[k] = (amp[:, :, None] * ph).mean(0)
             g = _interp_baseline(gamma, COARSE_WAVE, wave, ch.baseline)
             u = uvw_f[f0:f1][:, ch.baseline, 0][:, :, None, None]
@@ -318,20 +324,21 @@ def _simulate_exposure(w: _World, p: Planned, night: Path, seed: int) -> dict:
                 np.sqrt(rho_f[:, bl[:, 0]] * rho_f[:, bl[:, 1]]), 1e-12))
             return fi, fj, coh
 
+        ft_coh_mod = np.abs(ft_coh_rel) * ft_star
+        ft_coh_arg = np.angle(ft_coh_rel) if ft_comps else 0.0
+        sigma_ft = (1.0 / ftwave).astype(np.float32)
+
         def ft_light(n0, n1):
-            a, b = n0 * N_SUB_T, n1 * N_SUB_T
-            rr = r[a:b].reshape(n1 - n0, N_SUB_T, 4)
-            rh = rho[a:b].reshape(n1 - n0, N_SUB_T, 4).mean(1)
-            dr = rr[:, :, ftpair[:, 1]] - rr[:, :, ftpair[:, 0]]                # (n, sub_t, 24)
-            mean, var = dr.mean(1), dr.var(1)
-            lam = ftwave[None]
-            phase = np.exp(-2j * np.pi * mean[:, :, None, None] / lam
-                           - 2 * np.pi ** 2 * var[:, :, None, None] / lam ** 2)
-            amp = np.sqrt(rh[:, ftpair[:, 0]] * rh[:, ftpair[:, 1]])[:, :, None, None]
+            rh = rho_ms[n0:n1]
+            mean, var = dr_ms[n0:n1][:, ftbl], dv_ms[n0:n1][:, ftbl]           # (n, 24)
+            phase = (-2 * np.pi * mean[:, :, None, None].astype(np.float32) * sigma_ft
+                     + ft_coh_arg)
+            mod = (np.sqrt(rh[:, ftpair[:, 0]] * rh[:, ftpair[:, 1]])[:, :, None, None]
+                   * np.exp(-2 * np.pi ** 2 * var[:, :, None, None] * sigma_ft ** 2)
+                   * ft_coh_mod * period)
             fi = (rh[:, ftpair[:, 0]][:, :, None, None] * ft_star * ft_flux_rel + ftbg) * period
             fj = (rh[:, ftpair[:, 1]][:, :, None, None] * ft_star * ft_flux_rel + ftbg) * period
-            coh = amp * phase * ft_star * ft_coh_rel * period
-            return fi, fj, coh
+            return fi, fj, (mod, phase)
 
         truth["hour_angle_start_rad"] = float(h0)
         truth["uvw_mid_m"] = uvw_from_enu(inst.baseline_enu_m, h0 + SIDEREAL_RATE * duration / 2,
@@ -405,7 +412,8 @@ def _simulate_exposure(w: _World, p: Planned, night: Path, seed: int) -> dict:
     for n0 in range(0, n_ft, step):
         n1 = min(n_ft, n0 + step)
         fi, fj, coh = ft_light(n0, n1)
-        counts = detected(ft, fi, fj, coh)
+        counts = (detected_polar(ft, fi, fj, *coh) if isinstance(coh, tuple)
+                  else detected(ft, fi, fj, coh))
         counts = np.broadcast_to(counts, (n1 - n0,) + counts.shape[1:])
         ft_counts[n0:n1] = read_out(w.ft_det, counts, period, rng)[0]
 

@@ -1,0 +1,283 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""The night simulator: raw format (docs/raw_format.md), reproducibility, photon
+statistics, lamp physics and truth, checked against the format document, standard
+formulas and the truth file."""
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+from astropy.io import fits
+
+from pipeline.errors import ConfigError
+from pipeline.geometry import hour_angle_rad, uvw_from_enu
+from pipeline.simulate import load_scenario, simulate_night
+from pipeline.simulate.scenario import SCENARIO_DIR
+from astropy.time import Time, TimeDelta
+
+# Primary keywords of docs/raw_format.md and their types.
+COMMON = {"DATE-OBS": str, "MJD-OBS": float, "EXPTIME": float, "OBJECT": str, "RA": float,
+          "DEC": float, "RADESYS": str, "TELESCOP": str, "INSTRUME": str, "FRAMEKND": str,
+          "SPECSET": str, "POLMODE": str, "SCDIT": float, "NFRAME": int, "FTPERIOD": float,
+          "LAMPTEL": int, "STATION1": str, "STATION2": str, "STATION3": str, "STATION4": str,
+          "FTOBJECT": str, "FTRA": float, "FTDEC": float, "AMBTEMP": float, "AMBPRES": float,
+          "AMBHUM": float, "SEEING": float, "COHTIME": float, "EXPNO": int}
+WITH_METROLOGY = {"lamp-scan", "sky", "calibrator", "science"}
+
+
+def _files(night):
+    return sorted(Path(night).glob("*.fits"))
+
+
+def _truth(night):
+    return json.loads((Path(night) / "truth.json").read_text())
+
+
+def _by_kind(night, kind):
+    return [f for f in _files(night) if fits.getheader(f)["FRAMEKND"] == kind]
+
+
+def test_every_frame_kind_and_a_dark_for_every_dit(tiny_night, instrument):
+    kinds = [fits.getheader(f)["FRAMEKND"] for f in _files(tiny_night)]
+    for kind in ("dark", "flat", "lamp-beam", "lamp-scan", "sky", "calibrator", "science"):
+        assert kind in kinds
+    beams = sorted(fits.getheader(f)["LAMPTEL"] for f in _by_kind(tiny_night, "lamp-beam"))
+    assert beams == [1, 2, 3, 4]
+    dark_dits = {(h["SPECSET"], h["POLMODE"], h["SCDIT"])
+                 for h in map(fits.getheader, _by_kind(tiny_night, "dark"))}
+    for f in _files(tiny_night):
+        h = fits.getheader(f)
+        assert (h["SPECSET"], h["POLMODE"], h["SCDIT"]) in dark_dits, f.name
+    # fringe-tracker darks: dark exposures carry FT frames at the fixed FT period
+    for f in _by_kind(tiny_night, "dark"):
+        assert len(fits.getdata(f, "FT_PIX")) > 0
+
+
+def test_raw_format_conformance(tiny_night, instrument):
+    """Every documented keyword, extension and column, with its type and unit
+    (docs/raw_format.md)."""
+    n_out, n_wave = instrument.combiner.n_output, instrument.fringe_tracker.n_wave
+    for f in _files(tiny_night):
+        with fits.open(f) as hdul:
+            h = hdul[0].header
+            for key, typ in COMMON.items():
+                assert key in h, (f.name, key)
+                value = h[key]
+                assert isinstance(value, typ) and not isinstance(value, bool) or \
+                    typ is float and isinstance(value, int), (f.name, key, value)
+            kind = h["FRAMEKND"]
+            if kind == "calibrator":
+                assert isinstance(h["CALDIAM"], float) and isinstance(h["CALDIAME"], float)
+            if kind == "lamp-scan":
+                assert h["SCANRATE"] > 0
+            assert h["EXPTIME"] == pytest.approx(h["NFRAME"] * h["SCDIT"])
+            assert h["TELESCOP"] == "KESSA-4T" and h["INSTRUME"] == "FOURFOLD"
+            assert h["RADESYS"] == "ICRS"
+            assert Time(h["DATE-OBS"]).mjd == pytest.approx(h["MJD-OBS"], abs=1e-8)
+            names = [x.name for x in hdul]
+            expected = ["PRIMARY", "SCI_PIX", "SCI_TIME", "FT_PIX"]
+            expected += ["METROLOGY"] if kind in WITH_METROLOGY else []
+            assert names == expected, f.name
+            sci = hdul["SCI_PIX"]
+            assert sci.header["BITPIX"] == 16 and sci.header["BZERO"] == 32768
+            assert sci.header["BUNIT"] == "adu"
+            data = sci.data
+            assert data.dtype == np.uint16
+            n_x = instrument.setup(h["SPECSET"]).n_x
+            assert data.shape == (h["NFRAME"], instrument.detectors["science"].n_y, n_x)
+            assert data.max() <= instrument.detectors["science"].saturation_adu
+            st = hdul["SCI_TIME"]
+            assert st.columns["T_START"].unit == "s" and st.columns["T_EXP"].unit == "s"
+            assert len(st.data) == h["NFRAME"]
+            np.testing.assert_allclose(st.data["T_EXP"], h["SCDIT"])
+            ft = hdul["FT_PIX"]
+            assert ft.columns["TIME"].unit == "s" and ft.columns["COUNTS"].unit == "adu"
+            assert ft.header["TDIM2"] == f"({n_wave},{n_out})"
+            counts = ft.data["COUNTS"]
+            assert counts.dtype == np.uint16 and counts.shape[1:] == (n_out, n_wave)
+            # frame end times on the FT clock
+            np.testing.assert_allclose(np.diff(ft.data["TIME"]), h["FTPERIOD"], rtol=1e-9)
+            if kind in WITH_METROLOGY:
+                met = hdul["METROLOGY"]
+                assert met.columns["PATH"].unit == "m" and met.columns["TIME"].unit == "s"
+                assert met.data["PATH"].shape[1] == 4
+
+
+def _mini_scenario(tmp_path):
+    """The tiny scenario with a short scan, to simulate several nights quickly."""
+    text = (SCENARIO_DIR / "tiny.toml").read_text()
+    text = text.replace("scan_nframe = 250", "scan_nframe = 20")
+    path = tmp_path / "mini.toml"
+    path.write_text(text)
+    return path
+
+
+def test_reproducible_with_seed(tmp_path):
+    scen = _mini_scenario(tmp_path)
+    a = simulate_night(tmp_path / "a", scenario=scen, seed=5)
+    b = simulate_night(tmp_path / "b", scenario=scen, seed=5)
+    c = simulate_night(tmp_path / "c", scenario=scen, seed=6)
+    fa, fb, fc = _files(a), _files(b), _files(c)
+    assert [f.name for f in fa] == [f.name for f in fb] == [f.name for f in fc]
+    for x, y in zip(fa, fb):
+        assert x.read_bytes() == y.read_bytes(), x.name          # same seed: same bytes
+    assert (a / "truth.json").read_text() == (b / "truth.json").read_text()
+    differ = [not np.array_equal(fits.getdata(x, "SCI_PIX"), fits.getdata(y, "SCI_PIX"))
+              for x, y in zip(fa, fc)]
+    assert all(differ)                                            # another seed: other noise
+
+
+def test_photon_transfer_gives_the_gain(tiny_night, instrument):
+    """Photon transfer: for a Poisson signal, var(ADU) = mean(ADU - bias) / g + (rn/g)^2
+    (standard detector relation, e.g. Janesick 2007, Photon Transfer, SPIE). Difference of
+    two flat frames removes the fixed pattern (pixel response, bias pattern)."""
+    det = instrument.detectors["science"]
+    flat = fits.getdata(_by_kind(tiny_night, "flat")[0], "SCI_PIX").astype(float)
+    dark = fits.getdata([f for f in _by_kind(tiny_night, "dark")
+                         if fits.getheader(f)["SCDIT"] == fits.getheader(
+                             _by_kind(tiny_night, "flat")[0])["SCDIT"]][0], "SCI_PIX")
+    level = 0.5 * (flat[0] + flat[1]) - np.median(dark.astype(float), axis=0)
+    var = 0.5 * (flat[0] - flat[1]) ** 2
+    sel = level > 300                                # photon-dominated pixels
+    assert sel.sum() > 200
+    slope = np.polyfit(level[sel], var[sel] - (det.read_noise_e / det.gain_e_per_adu) ** 2, 1)[0]
+    # slope = 1/g; with a few hundred pixels of single-difference variance the scatter
+    # of the fitted slope is a few per cent: 10 % tolerance
+    assert 1 / slope == pytest.approx(det.gain_e_per_adu, rel=0.10)
+
+
+def _trace_sums(frames, trace_y):
+    """Sum of each trace over +-2 rows around its truth centre, (frame, trace, x)."""
+    n_f, n_y, n_x = frames.shape
+    out = np.zeros((n_f, trace_y.shape[0], n_x))
+    for k, ty in enumerate(trace_y):
+        for x in range(n_x):
+            y0 = int(round(ty[x]))
+            out[:, k, x] = frames[:, max(0, y0 - 2):y0 + 3, x].sum(1)
+    return out
+
+
+def test_single_beam_lamp_lights_only_its_pairs(tiny_night, instrument):
+    truth = _truth(tiny_night)
+    ch = truth["instrument"]["channels"]["sci-low-joint"]
+    trace_y = np.array(ch["trace_y_px"])
+    pair = instrument.combiner.output_pair
+    beams = _by_kind(tiny_night, "lamp-beam")
+    dit = fits.getheader(beams[0])["SCDIT"]
+    dark = [f for f in _by_kind(tiny_night, "dark") if fits.getheader(f)["SCDIT"] == dit][0]
+    dark_s = _trace_sums(fits.getdata(dark, "SCI_PIX").astype(float), trace_y).mean(0)
+    dark_ft = fits.getdata(dark, "FT_PIX")["COUNTS"].astype(float).mean(0)
+    for f in beams:
+        beam = fits.getheader(f)["LAMPTEL"] - 1
+        s = _trace_sums(fits.getdata(f, "SCI_PIX").astype(float), trace_y).mean(0) - dark_s
+        lit = (pair == beam).any(1)
+        # read noise 6 ADU x sqrt(5 rows) / sqrt(3 frames) ~ 8 ADU per column: unlit
+        # traces stay below 40 ADU per column, lit ones are hundreds of ADU above
+        assert np.abs(np.median(s[~lit], axis=1)).max() < 40
+        assert np.median(s[lit], axis=1).min() > 200
+        ft = fits.getdata(f, "FT_PIX")["COUNTS"].astype(float).mean(0) - dark_ft
+        assert np.abs(ft[~lit]).max() < 5 and ft[lit].min() > 100
+
+
+def test_scan_fringe_period_is_the_truth_wavelength(tiny_night, instrument):
+    """Fourier-transform spectroscopy: the fringe of pixel x against the metrology OPD
+    PATH_j - PATH_i peaks at wavenumber 1/lambda_eff (truth)."""
+    f = _by_kind(tiny_night, "lamp-scan")[0]
+    ch = _truth(tiny_night)["instrument"]["channels"]["sci-low-joint"]
+    trace_y, wave = np.array(ch["trace_y_px"]), np.array(ch["wave_pixel_m"])
+    with fits.open(f) as h:
+        frames = h["SCI_PIX"].data.astype(float)
+        t = h["SCI_TIME"].data["T_START"] + h["SCI_TIME"].data["T_EXP"] / 2
+        met_t, path = h["METROLOGY"].data["TIME"], h["METROLOGY"].data["PATH"]
+    sig = np.linspace(0.35e6, 0.6e6, 25001)
+    for k in (9, 14, 22):               # outputs of baselines (0,3), (1,2), (2,3)
+        i, j = instrument.combiner.output_pair[k]
+        opd = np.interp(t, met_t, path[:, j]) - np.interp(t, met_t, path[:, i])
+        for x in (4, 12, 20):
+            y = int(round(trace_y[k, x]))
+            s = frames[:, y, x] - frames[:, y, x].mean()
+            power = np.abs(np.exp(2j * np.pi * np.outer(sig, opd)) @ s)
+            # the fringe spectrum is the channel bandpass (FWHM ~4 % of lambda); its peak
+            # sits within ~0.3 % of the flux-weighted mean wavelength (bandpass asymmetry
+            # in wavenumber and the lamp slope are second order): 0.5 % tolerance
+            assert 1 / sig[power.argmax()] == pytest.approx(wave[k, x], rel=5e-3)
+
+
+def test_truth_targets_match_the_scenario(tiny_night):
+    sc = load_scenario("tiny")
+    truth = _truth(tiny_night)
+    sci = [v for v in truth["files"].values() if v["kind"] == "science"]
+    cal = [v for v in truth["files"].values() if v["kind"] == "calibrator"]
+    assert sci and cal
+    for v in sci:
+        tg = sc.targets[v["object"]]
+        assert (v["companion_dra_mas"], v["companion_ddec_mas"]) == tg.companion_mas
+        assert v["primary_offset_mas"] == list(tg.primary_offset_mas)
+        # Pogson's relation: flux ratio 10^(-0.4 dK)
+        assert v["flux_ratio"] == pytest.approx(10 ** (-0.4 * tg.companion_dkmag))
+    for v in cal:
+        tg = sc.targets[v["object"]]
+        # drawn within the catalogue error: 5 sigma is a generous bound for one draw
+        assert abs(v["diameter_mas"] - tg.cal_diameter_mas) < 5 * tg.cal_diameter_err_mas
+
+
+def test_metrology_follows_the_phase_model(tiny_night, instrument):
+    """DEVELOPERS.md phase model: D_ij = B.(s_sc - s_ft) + PATH_j - PATH_i equals the true
+    drift difference plus the metrology zero difference (truth), at the nm level."""
+    truth = _truth(tiny_night)
+    inst_t = truth["instrument"]
+    zero = np.array(inst_t["metrology_zero_m"])
+    dr = inst_t["metrology_drift"]
+    t0 = Time(truth["start_utc"])
+    lat = np.deg2rad(instrument.site.latitude_deg)
+    for f in _by_kind(tiny_night, "science") + _by_kind(tiny_night, "calibrator"):
+        with fits.open(f) as h:
+            hd = h[0].header
+            tm, path = h["METROLOGY"].data["TIME"], h["METROLOGY"].data["PATH"]
+        start = Time(hd["DATE-OBS"])
+        t = start + TimeDelta(tm, format="sec")
+        w = []
+        for ra, dec in ((hd["RA"], hd["DEC"]), (hd["FTRA"], hd["FTDEC"])):
+            hh = hour_angle_rad(t, ra, instrument.site.longitude_deg)
+            w.append(uvw_from_enu(instrument.station_enu_m, hh, np.deg2rad(dec), lat)[..., 2])
+        d = w[0] - w[1] + path
+        tn = (start - t0).to_value("s") + tm
+        drift = np.array(dr["amp_m"]) * np.sin(2 * np.pi * tn[:, None] / np.array(dr["period_s"])
+                                               + np.array(dr["phase_rad"]))
+        # metrology noise 2 nm rms plus the sidereal-rate linearisation inside the
+        # simulator (< 1 nm over seconds): 20 nm bound
+        np.testing.assert_allclose(d - drift - zero, 0.0, atol=20e-9)
+
+
+def test_hot_and_dead_pixels_show_in_the_frames(tiny_night):
+    truth = _truth(tiny_night)["instrument"]["detectors"]["science"]
+    darks = _by_kind(tiny_night, "dark")
+    long = max(darks, key=lambda f: fits.getheader(f)["SCDIT"])
+    d = fits.getdata(long, "SCI_PIX").astype(float).mean(0)
+    n_x = d.shape[1]
+    hot = [(y, x) for y, x in truth["hot_pixels"] if x < n_x]
+    rate = [r for (y, x), r in zip(truth["hot_pixels"], truth["hot_dark_e_per_s"]) if x < n_x]
+    dit = fits.getheader(long)["SCDIT"]
+    gain = truth["gain_e_per_adu"]
+    med = np.median(d)
+    for (y, x), r in zip(hot, rate):
+        if r * dit / gain > 5:          # only hot pixels well above the read noise
+            assert d[y, x] - med > 0.5 * r * dit / gain
+    flat = fits.getdata(_by_kind(tiny_night, "flat")[0], "SCI_PIX").astype(float).mean(0)
+    for y, x in truth["dead_pixels"]:
+        if x < n_x:
+            assert abs(flat[y, x] - med) < 30     # reads bias only
+
+
+def test_bad_scenario_names_file_and_field(tmp_path):
+    with pytest.raises(ConfigError, match="not found"):
+        load_scenario(tmp_path / "nope.toml")
+    bad = tmp_path / "bad.toml"
+    bad.write_text((SCENARIO_DIR / "tiny.toml").read_text().replace(
+        'ft_kmag = 7.5', 'ft_kmag = "bright"'))
+    with pytest.raises(ConfigError, match=r"bad\.toml.*ft_kmag"):
+        load_scenario(bad)
+    bad.write_text((SCENARIO_DIR / "tiny.toml").read_text() + "\n[sampling]\nfoo = 1\n")
+    with pytest.raises(ConfigError, match=r"bad\.toml.*sampling\.foo"):
+        load_scenario(bad)
