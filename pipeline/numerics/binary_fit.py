@@ -19,8 +19,15 @@ chi2_red when chi2_red > 1. A bootstrap gives a second covariance: over frames i
 bootstrap realisations of the observables are supplied (``vis2_boot`` ...), else
 over spectral channels (each resample draws channels with replacement, keeping
 every baseline and triangle of a channel together; Efron & Tibshirani 1993, An
-Introduction to the Bootstrap, ch. 6). The larger of the two (by the trace of the
-position block) is reported; the flux-ratio error is the larger of the two.
+Introduction to the Bootstrap, ch. 6). Realisations drawn from the frame-bootstrap
+covariance between channels (:func:`draw_correlated`) are labelled "covariance".
+The larger of the two covariances (by the trace of the position block) is
+reported; likewise for the primary's offset, and the flux-ratio error is the
+larger of the two.
+
+Assumption: without referenced phases the primary is taken at the science
+fibre's centre (the commanded pointing) for the fibre attenuation and the
+smearing envelope; with them its offset is fitted.
 
 Flags (bit mask, :data:`FLAGS`):
 
@@ -29,7 +36,7 @@ Flags (bit mask, :data:`FLAGS`):
   near-equal binary;
 * 2 ``field_edge``: best position within one grid step of the search radius;
 * 4 ``flux_ratio_zero``: flux ratio below 3 sigma;
-* 8 ``chi2_red``: reduced chi-square outside [chi2_red_min, chi2_red_max];
+* 8 ``chi2_red``: reduced chi-square outside ``chi2_red_range``;
 * 16 ``no_covariance``: lmfit could not estimate a covariance (bootstrap only).
 """
 
@@ -47,7 +54,7 @@ from pipeline.skymodel import MAS, binary_visibility
 from pipeline.numerics.ellipse import ErrorEllipse, SepPA, correlation, error_ellipse, sep_pa
 
 __all__ = ["FLAGS", "Observables", "BinaryFitResult", "fit_binary", "search_grid",
-           "params_to_json", "params_from_json", "to_jsonable"]
+           "params_to_json", "params_from_json", "to_jsonable", "draw_correlated"]
 
 FLAGS = {"ambiguous": 1, "field_edge": 2, "flux_ratio_zero": 4, "chi2_red": 8,
          "no_covariance": 16}
@@ -83,6 +90,7 @@ class Observables:
     visphi_boot: np.ndarray | None = None
     baselines: tuple = BASELINES
     triangles: tuple = TRIANGLES
+    boot_kind: str = "frames"             # what the *_boot realisations resample
 
     def __post_init__(self):
         nw = np.shape(self.wave)[-1]
@@ -360,10 +368,15 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
     pos_fit, pos_boot = cov_fit_full[:2, :2], cov_boot_full[:2, :2]
     use_boot = (not np.all(np.isfinite(pos_fit))
                 or (np.all(np.isfinite(pos_boot)) and np.trace(pos_boot) > np.trace(pos_fit)))
-    cov_full = cov_boot_full if use_boot else cov_fit_full
-    cov = cov_full[:2, :2]
-    err = np.sqrt(np.diag(cov_full))
-    ratio_err = float(np.nanmax([np.sqrt(cov_fit_full[2, 2]), np.sqrt(cov_boot_full[2, 2])]))
+    cov = (cov_boot_full if use_boot else cov_fit_full)[:2, :2]
+    # Every other error: the larger of the two estimates (block by block).
+    prim_fit, prim_boot = cov_fit_full[3:, 3:], cov_boot_full[3:, 3:]
+    prim = (prim_boot if not np.all(np.isfinite(prim_fit)) or
+            (np.all(np.isfinite(prim_boot)) and np.trace(prim_boot) > np.trace(prim_fit))
+            else prim_fit)
+    err = np.sqrt(np.concatenate([np.diag(cov), [np.nan], np.diag(prim)]))
+    with np.errstate(invalid="ignore"):
+        ratio_err = float(np.fmax(np.sqrt(cov_fit_full[2, 2]), np.sqrt(cov_boot_full[2, 2])))
 
     dra, ddec, ratio = bp["dra"].value, bp["ddec"].value, bp["flux_ratio"].value
     flag = 0
@@ -404,7 +417,7 @@ def _bootstrap(obs, *, residual_kw, start, n_boot, mode, seed, names):
     nw = len(obs.wave)
     out = []
     if obs.has_boot and mode == "auto":
-        kind = "frames"
+        kind = obs.boot_kind
         for b in range(min(n_boot, len(obs.vis2_boot))):
             res, _ = _residual_factory(
                 obs, vis2=obs.vis2_boot[b], t3phi=obs.t3phi_boot[b],
@@ -421,6 +434,41 @@ def _bootstrap(obs, *, residual_kw, start, n_boot, mode, seed, names):
                                        weight=weight, **residual_kw)
             out.append(_refine(res, start.copy()).params)
     return kind, np.array([[p[n].value for n in names] for p in out])
+
+
+def draw_correlated(value, err, cov=None, *, n: int, seed: int = 0):
+    """Gaussian realisations of observables about ``value``.
+
+    Parameters
+    ----------
+    value, err : ndarray, shape (..., n_wave)
+    cov : ndarray, shape (..., n_wave, n_wave), or None (independent channels, ``err``)
+        Covariance between channels (e.g. from a bootstrap over frames).
+    n : int, number of realisations
+    seed : int
+
+    Returns
+    -------
+    draws : ndarray, shape (n, ..., n_wave); NaN where ``value`` or ``err`` is NaN
+
+    Notes
+    -----
+    Cholesky factor of each covariance block after clipping negative eigenvalues
+    (a bootstrap covariance is only positive semi-definite), NaN rows treated as
+    independent with the diagonal error.
+    """
+    rng = np.random.default_rng(seed)
+    value, err = np.asarray(value, float), np.asarray(err, float)
+    z = rng.standard_normal((n,) + value.shape)
+    if cov is None:
+        return value + z * err
+    c = np.asarray(cov, float)
+    ok = np.isfinite(c).all(-1) & np.isfinite(c).all(-2)
+    c = np.where(ok[..., :, None] & ok[..., None, :], c, 0.0)
+    c = c + np.eye(c.shape[-1]) * np.where(ok, 0.0, np.nan_to_num(err) ** 2)[..., None]
+    vals, vecs = np.linalg.eigh(0.5 * (c + np.swapaxes(c, -1, -2)))
+    root = vecs * np.sqrt(np.clip(vals, 0, None))[..., None, :]
+    return value + np.einsum("...ij,n...j->n...i", root, z)
 
 
 def params_to_json(params) -> str:

@@ -1,0 +1,112 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Stage glue of ``binary``: a ``calibrate`` product in, the ``binary`` product out.
+
+Reads the calibrated observables of one science exposure (any mapping-like view
+with ``view["name"]``, ``name in view`` and ``view.attrs``), builds
+:class:`pipeline.numerics.binary_fit.Observables`, fits, and returns the outputs
+the store writes: the best fit as attributes (``lmfit_params`` holds the lmfit
+Parameters as JSON), the chi-square map of the global search, and the data with
+the best model (for the report).
+"""
+
+from __future__ import annotations
+
+import json
+import numpy as np
+
+from .errors import BadInput, FitFailed
+from .numerics.binary_fit import FLAGS, Observables, draw_correlated, fit_binary, to_jsonable
+from .numerics.binary_model import binary_observables
+from .stage import Array
+
+__all__ = ["observables_from_product", "binary_product", "FLAG_DOC"]
+
+FLAG_DOC = ", ".join(f"{b}={name}" for name, b in FLAGS.items())
+
+
+def observables_from_product(view, *, use_phases: bool = True, n_draw: int = 0,
+                             seed: int = 0) -> Observables:
+    """Observables of a ``calibrate`` (or ``average``) product.
+
+    ``band`` (or ``bandwidth``) gives each channel's FWHM; without it the channel
+    spacing is used. With ``n_draw > 0`` and a ``vis2_cov`` dataset, ``n_draw``
+    realisations are drawn from the frame-bootstrap covariances between channels
+    (``vis2_cov``, ``t3phi_cov``, ``visphi_cov``; independent channels where absent)
+    for the bootstrap of the fit.
+    """
+    path = getattr(view, "path", "?")
+    try:
+        wave = np.asarray(view["wave"], float)
+        vis2, vis2_err = np.asarray(view["vis2"], float), np.asarray(view["vis2_err"], float)
+        t3, t3e = np.asarray(view["t3phi"], float), np.asarray(view["t3phi_err"], float)
+        uvw = np.asarray(view["uvw"], float)
+    except KeyError as exc:
+        raise BadInput(path, f"calibrated product lacks {exc}") from None
+    band = next((np.asarray(view[k], float) for k in ("band", "bandwidth") if k in view), None)
+    if band is None or band.shape != wave.shape:
+        band = np.abs(np.gradient(wave))
+    vp = vpe = None
+    if use_phases and "visphi" in view and "visphi_err" in view:
+        vp, vpe = np.asarray(view["visphi"], float), np.asarray(view["visphi_err"], float)
+        if not np.any(np.isfinite(vp) & np.isfinite(vpe) & (vpe > 0)):
+            vp = vpe = None
+    boots = {}
+    if n_draw > 0 and "vis2_cov" in view:
+        boots["vis2_boot"] = draw_correlated(vis2, vis2_err, view["vis2_cov"], n=n_draw, seed=seed)
+        boots["t3phi_boot"] = draw_correlated(t3, t3e, view["t3phi_cov"] if "t3phi_cov" in view
+                                              else None, n=n_draw, seed=seed + 1)
+        if vp is not None:
+            cov = view["visphi_cov"] if "visphi_cov" in view else None
+            boots["visphi_boot"] = draw_correlated(vp, vpe, cov, n=n_draw, seed=seed + 2)
+    try:
+        return Observables(vis2=vis2, vis2_err=vis2_err, t3phi=t3, t3phi_err=t3e, uvw=uvw,
+                           wave=wave, bandwidth=band, visphi=vp, visphi_err=vpe,
+                           boot_kind="covariance", **boots)
+    except ValueError as exc:
+        raise BadInput(path, str(exc)) from None
+
+
+def binary_product(view, instrument, *, exposure: str, search_radius_mas: float | None,
+                   fit_kw: dict, use_phases: bool = True, n_boot: int = 50, seed: int = 0) -> dict:
+    """Fit one calibrated exposure; returns the ``binary`` product's outputs."""
+    obs = observables_from_product(view, use_phases=use_phases, n_draw=n_boot, seed=seed)
+    fibre = float(instrument.fibre_fwhm_mas_at_2p2um)
+    radius = fibre if search_radius_mas is None else float(search_radius_mas)
+    try:
+        res = fit_binary(obs, fibre_fwhm_mas=fibre, search_radius_mas=radius, n_boot=n_boot,
+                         seed=seed, **fit_kw)
+    except FitFailed as exc:
+        raise BadInput(getattr(view, "path", "?"), str(exc)) from None
+    p = json.loads(res.params_json)
+    m2, mt, mp = binary_observables(
+        obs.uvw, obs.wave, dra_mas=res.dra, ddec_mas=res.ddec, flux_ratio=res.flux_ratio,
+        flux_slope=res.flux_slope, primary_dra_mas=p["primary_dra"]["value"],
+        primary_ddec_mas=p["primary_ddec"]["value"],
+        diameter1_mas=fit_kw.get("diameters_mas", (0, 0))[0],
+        diameter2_mas=fit_kw.get("diameters_mas", (0, 0))[1], bandwidth_m=obs.bandwidth,
+        fibre_fwhm_mas=fibre)
+    a = view.attrs
+    out = {k: v for k, v in to_jsonable(res).items() if k != "params_json"}
+    out.update(lmfit_params=res.params_json, flag_doc=FLAG_DOC, exposure=exposure,
+               target=str(a.get("object", "")), mjd=float(a.get("mjd", np.nan)),
+               setup=str(a.get("setup", "")), polmode=str(a.get("polmode", "")),
+               ra_deg=float(a.get("ra_deg", np.nan)), dec_deg=float(a.get("dec_deg", np.nan)),
+               fibre_fwhm_mas=fibre, search_radius_mas=radius, has_phase=obs.has_phase,
+               frac_rejected=float(a.get("frac_rejected", np.nan)),
+               int_time_s=float(a.get("int_time_s", np.nan)))
+    pb, pt = ("pol", "baseline", "wave"), ("pol", "triangle", "wave")
+    out.update(
+        chi2_map=Array(res.chi2_map, ("y", "x"), "", "chi2 of the global search, flux "
+                       "ratio profiled; NaN outside the field"),
+        grid_dra=Array(res.grid_dra, ("x",), "mas"), grid_ddec=Array(res.grid_ddec, ("y",), "mas"),
+        minima=Array(res.minima, ("minimum", "column"), "", "dra mas, ddec mas, chi2"),
+        vis2=Array(obs.vis2, pb, ""), vis2_err=Array(obs.vis2_err, pb, ""),
+        t3phi=Array(obs.t3phi, pt, "rad"), t3phi_err=Array(obs.t3phi_err, pt, "rad"),
+        model_vis2=Array(m2, ("baseline", "wave"), "", "best model"),
+        model_t3phi=Array(mt, ("triangle", "wave"), "rad", "best model"),
+        model_visphi=Array(mp, ("baseline", "wave"), "rad", "best model"),
+        uvw=Array(np.asarray(obs.uvw).reshape(-1, 6, 3).mean(0), ("baseline", "uvw"), "m"),
+        wave=Array(np.asarray(obs.wave), ("wave",), "m"))
+    if obs.has_phase:
+        out.update(visphi=Array(obs.visphi, pb, "rad"), visphi_err=Array(obs.visphi_err, pb, "rad"))
+    return out

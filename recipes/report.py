@@ -1,0 +1,53 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Stage ``report``: the night's QC report ``WORK/report/index.html`` with PNG figures
+(uv coverage, V2 and closure phases with the model, residuals, chi-square maps,
+astrometry against time, calibration QC of the earlier stages)."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from pipeline import __version__
+from pipeline.astrometry_table import astrometry_table, config_hash, row_from_binary
+from pipeline.binary_product import FLAG_DOC
+from pipeline.errors import NothingToDo
+from pipeline.inventory import Inventory
+from pipeline.report import build_report
+from pipeline.stage import Stage, Unit
+
+QC_STAGES = ("flat", "wavecal", "combiner", "reference")
+
+
+@dataclass(frozen=True)
+class ReportParams:
+    title: str = "twinfield night report"   # page title
+    qc: bool = True                         # include calibration QC of earlier stages
+
+
+def plan(inventory: Inventory, params: ReportParams, upstream) -> list[Unit]:
+    needs = {f"binary:{k}": ("binary", u.label) for k, u in enumerate(upstream.get("binary", []))}
+    if params.qc:
+        for stage in QC_STAGES:
+            needs.update({f"{stage}:{k}": (stage, u.label)
+                          for k, u in enumerate(upstream.get(stage, []))})
+    return [Unit(label="night", needs=needs)]
+
+
+def run(inputs, params: ReportParams) -> dict:
+    prods = inputs.products
+    binaries = sorted((v for r, v in prods.items() if r.startswith("binary:")),
+                      key=lambda v: v.attrs.get("mjd", 0.0))
+    if not binaries:
+        raise NothingToDo("no science exposure was fitted")
+    qc = {s: [v for r, v in prods.items() if r.startswith(s + ":")] for s in QC_STAGES}
+    table = astrometry_table([row_from_binary(v.attrs) for v in binaries],
+                             code_version=__version__,
+                             config=config_hash(v.key for v in binaries), flag_doc=FLAG_DOC)
+    path = build_report(inputs.workdir / "report", binaries, table=table, qc=qc,
+                        title=params.title)
+    return {"index_html": str(path), "n_exposures": len(binaries)}
+
+
+STAGE = Stage(name="report", version="1", params=ReportParams, after=("binary",),
+              granularity="night", plan=plan, run=run,
+              doc="QC report: uv coverage, V2/closure phases with model, chi2 maps, astrometry")

@@ -1,0 +1,144 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""binary, tables and report stages on synthetic calibrated products written by the store.
+
+The calibrated observables are drawn here from pipeline.skymodel.binary_visibility
+with noise, written as ``calibrate`` products, and the three recipes run on them
+through the store's ProductView, without the engine.
+"""
+
+import json
+
+import numpy as np
+import pytest
+from astropy.table import Table
+
+from pipeline.geometry import uvw_from_enu
+from pipeline.skymodel import MAS, binary_visibility
+from pipeline.stage import Array, Inputs, Unit
+from pipeline.store import ProductView, write_product
+from recipes import binary, report, tables
+
+WAVE = np.linspace(2.0e-6, 2.4e-6, 16)
+PAIRS = [(0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3)]
+TRI = [(0, 1, 2), (0, 1, 3), (0, 2, 3), (1, 2, 3)]
+TRUTH = dict(dra=7.0, ddec=-5.0, ratio=0.3, x1=1.2, y1=0.8)
+
+
+def _calibrated(instrument, rng, hour_deg, mjd):
+    uvw = uvw_from_enu(instrument.baseline_enu_m, np.deg2rad(hour_deg), np.deg2rad(-28.0),
+                       np.deg2rad(instrument.site.latitude_deg))[0]
+    vis = binary_visibility(uvw[:, 0, None], uvw[:, 1, None], WAVE, dx_rad=TRUTH["dra"] * MAS,
+                            dy_rad=TRUTH["ddec"] * MAS, flux_ratio=TRUTH["ratio"],
+                            x1_rad=TRUTH["x1"] * MAS, y1_rad=TRUTH["y1"] * MAS,
+                            bandwidth_m=WAVE / 22,
+                            fibre_fwhm_rad_at_2p2um=instrument.fibre_fwhm_mas_at_2p2um * MAS)
+    t3 = np.array([np.angle(vis[PAIRS.index((i, j))] * vis[PAIRS.index((j, k))]
+                            * np.conj(vis[PAIRS.index((i, k))])) for i, j, k in TRI])
+    e = 0.01
+    pb, pt = ("pol", "baseline", "wave"), ("pol", "triangle", "wave")
+    cov_b = np.broadcast_to(np.eye(WAVE.size) * e ** 2, (1, 6, WAVE.size, WAVE.size)).copy()
+    return {
+        "vis2": Array(np.abs(vis)[None] ** 2 + rng.normal(0, e, (1, 6, WAVE.size)), pb),
+        "vis2_err": Array(np.full((1, 6, WAVE.size), e), pb),
+        "vis2_cov": Array(cov_b, pb + ("wave2",)),
+        "t3phi": Array(t3[None] + rng.normal(0, e, (1, 4, WAVE.size)), pt, "rad"),
+        "t3phi_err": Array(np.full((1, 4, WAVE.size), e), pt, "rad"),
+        "visphi": Array(np.angle(vis)[None] + rng.normal(0, e, (1, 6, WAVE.size)), pb, "rad"),
+        "visphi_err": Array(np.full((1, 6, WAVE.size), e), pb, "rad"),
+        "uvw": Array(uvw, ("baseline", "uvw"), "m"), "wave": Array(WAVE, ("wave",), "m"),
+        "band": Array(WAVE / 22, ("wave",), "m"),
+        "object": "HD-KESSA-7", "mjd": mjd, "setup": "low", "polmode": "joint",
+        "ra_deg": 83.3, "dec_deg": -28.0, "frac_rejected": 0.05}
+
+
+@pytest.fixture(scope="module")
+def night(tmp_path_factory, instrument):
+    rng = np.random.default_rng(7)
+    work = tmp_path_factory.mktemp("work")
+    params = binary.BinaryParams(search_radius_mas=12.0, n_boot=8, n_start=3)
+    views = []
+    for k, hour in enumerate((-30.0, 0.0, 25.0)):
+        label = f"FF_SCI_{k:03d}"
+        cal = write_product(work / "calibrate" / f"{label}.c{k}.h5",
+                            _calibrated(instrument, rng, hour, 61010.1 + hour / 360),
+                            {"key": f"calibrate-c{k}"})
+        unit = Unit(label=label, raw=(f"/night/{label}.fits",),
+                    needs={"calibrated": ("calibrate", label)})
+        out = binary.run(Inputs(unit=unit, raw=[], products={"calibrated": ProductView(cal)},
+                                instrument=instrument, workdir=work), params)
+        path = write_product(work / "binary" / f"{label}.b{k}.h5", out, {"key": f"binary-b{k}"})
+        views.append(ProductView(path))
+    qc = {"flat": {"profile_sigma": Array(1 + 0.02 * rng.normal(size=(24, 16)), ("trace", "x"))},
+          "wavecal": {"wave_pixel": Array(WAVE + 1e-10 * rng.normal(size=(24, 16)),
+                                          ("trace", "x"), "m")},
+          "combiner": {"condition": Array(3 + rng.random((1, 16)), ("pol", "wave"))},
+          "reference": {"frame_valid": Array(rng.random((50, 6)) > 0.1, ("frame", "baseline")),
+                        "label": "FF_SCI_000"}}
+    qc_views = {s: ProductView(write_product(work / s / f"x.{s}.h5", d, {"key": s}))
+                for s, d in qc.items()}
+    return work, views, qc_views
+
+
+def test_binary_product_recovers_truth(night):
+    _, views, _ = night
+    for v in views:
+        a = v.attrs
+        cov = np.array(json.loads(a["cov"]))
+        d = np.array([a["dra"] - TRUTH["dra"], a["ddec"] - TRUTH["ddec"]])
+        # 3-sigma ellipse: Mahalanobis d^2 < 11.8 (chi-square, 2 dof, 99.73 %; table value).
+        assert d @ np.linalg.solve(cov, d) < 11.8
+        assert abs(a["primary_dra"] - TRUTH["x1"]) < 3 * a["primary_dra_err"]
+        assert a["bootstrap_kind"] == "covariance" and a["has_phase"]
+        assert json.loads(a["lmfit_params"])["dra"]["vary"] is True
+        assert v["chi2_map"].shape == (v["grid_ddec"].size, v["grid_dra"].size)
+
+
+def test_tables_written_and_read_back(night, instrument):
+    work, views, _ = night
+    unit = Unit(label="night", needs={f"exp{k}": ("binary", "x") for k in range(3)})
+    out = tables.run(Inputs(unit=unit, raw=[], products={f"exp{k}": v for k, v in enumerate(views)},
+                            instrument=instrument, workdir=work), tables.TablesParams())
+    assert out["n_rows"] == 3
+    required = ["exposure", "target", "mjd", "jyear", "dra", "ddec", "dra_err", "ddec_err",
+                "dra_ddec_corr", "sep", "sep_err", "pa", "pa_err", "flux_ratio",
+                "flux_ratio_err", "chi2_red", "ndata", "flag", "primary_dra", "primary_ddec",
+                "primary_dra_err", "primary_ddec_err", "ellipse_major", "ellipse_minor",
+                "ellipse_pa"]
+    units = {"mjd": "d", "jyear": "yr", "dra": "mas", "ddec_err": "mas", "sep": "mas",
+             "pa": "deg", "pa_err": "deg", "ellipse_pa": "deg", "primary_ddec": "mas"}
+    for ext in ("ecsv", "fits"):
+        t = Table.read(work / f"astrometry.{ext}")
+        assert set(required) <= set(t.colnames) and len(t) == 3
+        for c, unit_ in units.items():
+            assert str(t[c].unit) == unit_, (ext, c)
+        assert t.meta["CODEVER"] and len(t.meta["CFGHASH"]) == 16
+        assert "East of North" in t.meta["CONVENT"]
+        # Julian epoch by its definition (IAU): J2000.0 + (JD - 2451545.0) / 365.25.
+        np.testing.assert_allclose(t["jyear"], 2000 + (t["mjd"] + 2400000.5 - 2451545.0)
+                                   / 365.25, atol=1e-9)
+        np.testing.assert_allclose(np.hypot(t["dra"], t["ddec"]), t["sep"], rtol=1e-12)
+        assert list(t["exposure"]) == [f"FF_SCI_{k:03d}.fits" for k in range(3)]
+    csv = Table.read(work / "astrometry.csv", format="ascii.csv")
+    assert set(required) <= set(csv.colnames) and len(csv) == 3
+
+
+def test_report_html_and_pngs(night, instrument):
+    work, views, qc = night
+    needs = {f"binary:{k}": ("binary", "x") for k in range(3)}
+    prods = {f"binary:{k}": v for k, v in enumerate(views)}
+    prods.update({f"{s}:0": v for s, v in qc.items()})
+    out = report.run(Inputs(unit=Unit(label="night", needs=needs), raw=[], products=prods,
+                            instrument=instrument, workdir=work), report.ReportParams())
+    page = (work / "report" / "index.html").read_text()
+    assert out["index_html"].endswith("index.html") and "http" not in page.replace(
+        "<!DOCTYPE html>", "")                  # self-contained: no network references
+    pngs = sorted(p.name for p in (work / "report").glob("*.png"))
+    assert len(pngs) == 3 + 2                   # one per exposure, night, calibration QC
+    for name in pngs:
+        assert f'src="{name}"' in page
+        data = (work / "report" / name).read_bytes()
+        # PNG signature (PNG specification, ISO/IEC 15948, section 5.2).
+        assert data[:8] == b"\x89PNG\r\n\x1a\n"
+        import matplotlib.image
+        img = matplotlib.image.imread(work / "report" / name)
+        assert img.ndim == 3 and img.shape[0] > 100 and img.shape[1] > 100
