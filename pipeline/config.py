@@ -75,13 +75,15 @@ def _check_type(value, hint, source, where):
     return value
 
 
-def load_params(stages, files=()) -> dict:
+def load_params(stages, files=(), *, also_known=()) -> dict:
     """Params instance per stage name: defaults, then each file's overrides in order.
 
     Parameters
     ----------
     stages : list of pipeline.stage.Stage
     files : paths of TOML files (later ones win)
+    also_known : names of other stages whose tables are accepted and ignored (a
+        reduction run with a subset of the stages)
 
     Raises
     ------
@@ -93,6 +95,8 @@ def load_params(stages, files=()) -> dict:
     origin = {name: {} for name in by_name}
     for path in files:
         for name, table in read_overrides(path).items():
+            if name not in by_name and name in also_known:
+                continue
             if name not in by_name:
                 raise ConfigError(path, f"[{name}] is not a stage; stages are {list(by_name)}")
             cls = by_name[name].params

@@ -135,7 +135,8 @@ def build_plan(night_dir, workdir, *, config=None, stages=None) -> Plan:
 
     Raises ConfigError (bad parameters) and BadInput (no night directory)."""
     stages = _stages() if stages is None else list(stages)
-    params = load_params(stages, config_files(config))
+    params = load_params(stages, config_files(config),
+                         also_known=[s.name for s in _stages()])
     inventory = Inventory.scan(night_dir)
     plan = Plan(inventory.night_dir, Path(workdir).resolve(), inventory, params, stages)
     ids = {r.path: r.identity for r in inventory.records}

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, fields
 
+from pipeline.errors import BadInput
 from pipeline.inventory import Inventory, dark_label, ft_dark_label
 from pipeline.numerics.darks import master_dark
 from pipeline.stage import Array, Stage, Unit
@@ -42,13 +43,21 @@ def plan(inventory: Inventory, params: DarkParams, upstream) -> list[Unit]:
 
 def run(inputs, params: DarkParams) -> dict:
     meta = inputs.unit.meta
+    skipped = []
     if meta["channel"] == "sci":
         blocks = [b for raw in inputs.raw
                   for b in raw.science_pixels(params.frames_per_chunk).blocks]
         axes, dit, hot = ("y", "x"), meta["dit"], params.hot_rate_adu_s
-    else:
-        blocks = [b for raw in inputs.raw
-                  for b in raw.ft_counts(params.ft_frames_per_chunk).blocks]
+    else:   # every dark reads the FT: a file with bad FT data is skipped (and recorded)
+        blocks, skipped = [], []
+        for raw in inputs.raw:
+            try:
+                blocks += list(raw.ft_counts(params.ft_frames_per_chunk).blocks)
+            except BadInput as exc:
+                skipped.append(str(exc))
+        if not blocks:
+            raise BadInput(inputs.unit.raw[0], "no dark file has usable fringe-tracker data: "
+                           + "; ".join(skipped))
         axes, dit, hot = ("output", "ft_wave"), meta["period"], params.ft_hot_rate_adu_s
     res = master_dark(lambda: (b.compute(scheduler="synchronous") for b in blocks), dit=dit,
                       kappa=params.kappa, hot_rate=hot, hot_sigma=params.hot_sigma,
@@ -61,7 +70,8 @@ def run(inputs, params: DarkParams) -> dict:
             "hot": Array(res.hot, axes), "dead": Array(res.dead, axes),
             "noisy": Array(res.noisy, axes), "dit": float(dit), "n_frame": res.n_frame,
             "n_clipped": res.n_clipped, "n_hot": int(res.hot.sum()),
-            "n_dead": int(res.dead.sum()), "n_noisy": int(res.noisy.sum())}
+            "n_dead": int(res.dead.sum()), "n_noisy": int(res.noisy.sum()),
+            "skipped_files": skipped}
 
 
 STAGE = Stage(name="dark", version="1", params=DarkParams, after=("inventory",),

@@ -1,0 +1,60 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Two small stages for engine tests (no physics): one downstream of every science dark,
+and one whose product is written slowly, chunk by chunk (to be killed mid-write)."""
+
+import os
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import dask
+import dask.array as da
+import numpy as np
+
+from pipeline.stage import Array, Stage, Unit
+
+
+@dataclass(frozen=True)
+class ConsumerParams:
+    scale: float = 1.0  # multiplies the dark level
+
+
+def _consumer_plan(inventory, params, upstream):
+    return [Unit(label=u.label, needs={"dark": ("dark", u.label)})
+            for u in upstream.get("dark", []) if u.meta["channel"] == "sci"]
+
+
+def _consumer_run(inputs, params):
+    level = float(np.nanmedian(inputs.products["dark"]["master"]))
+    return {"level": Array(np.array([level * params.scale]), ("one",), "adu")}
+
+
+CONSUMER = Stage("consumer", "1", ConsumerParams, ("dark",), "setup", _consumer_plan,
+                 _consumer_run)
+
+
+@dataclass(frozen=True)
+class SlowParams:
+    n_block: int = 6   # blocks of the slow product
+
+
+def _slow_plan(inventory, params, upstream):
+    darks = [u for u in upstream.get("dark", []) if u.meta["channel"] == "sci"]
+    return [Unit(label="all", needs={f"d{i}": ("dark", u.label) for i, u in enumerate(darks)})]
+
+
+def _block(i):
+    marker = os.environ.get("TWINFIELD_TEST_MARKER")
+    if marker and i == 2:
+        Path(marker).write_text("writing")
+        time.sleep(60)      # killed here, with a partly written temporary file
+    return np.full((1, 1000), float(i))
+
+
+def _slow_run(inputs, params):
+    blocks = [da.from_delayed(dask.delayed(_block)(i), (1, 1000), float)
+              for i in range(params.n_block)]
+    return {"ramp": Array(da.concatenate(blocks), ("row", "col"))}
+
+
+SLOW = Stage("slow", "1", SlowParams, ("dark",), "night", _slow_plan, _slow_run)

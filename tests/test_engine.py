@@ -1,0 +1,199 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""The engine on small nights: reuse, staleness, rerun, failure isolation, locking and
+recovery from a killed run."""
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from fake_stages import CONSUMER, SLOW
+from pipeline.engine import (LOCK_FILE, LOG_FILE, Locked, build_plan, reduce, rerun, status)
+from pipeline.errors import ConfigError
+from pipeline.store import ProductView, is_complete
+from rawfactory import small_night, write_raw
+from recipes import dark, inventory
+
+STAGES = [inventory.STAGE, dark.STAGE, CONSUMER]
+DARKS = {("dark", "sci-low-joint-dit1"), ("dark", "sci-low-joint-dit2"),
+         ("dark", "ft-period1ms")}
+CONSUMERS = {("consumer", "sci-low-joint-dit1"), ("consumer", "sci-low-joint-dit2")}
+ALL = {("inventory", "night")} | DARKS | CONSUMERS
+
+
+@pytest.fixture
+def night(tmp_path, rng):
+    return small_night(tmp_path / "night", rng, dits=(1.0, 2.0))
+
+
+def _states(work):
+    return {(r["stage"], r["name"]): r["state"] for r in status(work, stages=STAGES)}
+
+
+def test_second_reduce_runs_nothing(night, tmp_path):
+    work = tmp_path / "work"
+    first = reduce(night, work, stages=STAGES, progress=False)
+    assert set(first.computed) == ALL and first.exit_code == 0
+    second = reduce(night, work, stages=STAGES, progress=False)
+    assert second.computed == [] and set(second.reused) == ALL
+    assert set(_states(work).values()) == {"current"}
+    log = (work / LOG_FILE).read_text().split("reduce ")[-1]     # the second run's lines
+    assert "computed" not in log.replace("0 product(s) computed", "") and log.count("reuse ") == 6
+
+
+def test_parameter_change_makes_darks_and_dependents_stale(night, tmp_path):
+    work = tmp_path / "work"
+    reduce(night, work, stages=STAGES, progress=False)
+    cfg = tmp_path / "more.toml"
+    cfg.write_text("[dark]\nkappa = 4.0\n")
+    plan = build_plan(night, work, config=[cfg], stages=STAGES)
+    states = {uid: plan.state(pu) for uid, pu in plan.units.items()}
+    assert {u for u, s in states.items() if s == "stale"} == DARKS | CONSUMERS
+    assert states[("inventory", "night")] == "current"
+    run = reduce(night, work, config=[cfg], stages=STAGES, progress=False)
+    assert set(run.computed) == DARKS | CONSUMERS and run.reused == [("inventory", "night")]
+    # rerun: that stage and its dependents only, with the remembered config.
+    again = rerun(work, "dark", stages=STAGES, progress=False)
+    assert set(again.computed) == DARKS | CONSUMERS and again.reused == [("inventory", "night")]
+    assert json.loads(ProductView(plan.units[("dark", "ft-period1ms")].path)
+                      .attrs["params"])["kappa"] == 4.0
+
+
+def test_touching_one_dark_frame(night, tmp_path):
+    work = tmp_path / "work"
+    reduce(night, work, stages=STAGES, progress=False)
+    p = night / "dark_2.fits"
+    st = p.stat()
+    os.utime(p, ns=(st.st_atime_ns, st.st_mtime_ns + 5 * 10**9))
+    stale = {u for u, s in _states(work).items() if s == "stale"}
+    # The file's own dark group, the FT dark (every dark reads the FT), their dependents,
+    # and the inventory table (which lists the file); nothing else.
+    expected = {("inventory", "night"), ("dark", "sci-low-joint-dit2"), ("dark", "ft-period1ms"),
+                ("consumer", "sci-low-joint-dit2")}
+    assert stale == expected
+    run = reduce(night, work, stages=STAGES, progress=False)
+    assert set(run.computed) == expected
+
+
+def test_bad_file_fails_its_branch_only(night, tmp_path, rng):
+    # A dark whose cube disagrees with its header (valid header: planned, fails at run)...
+    write_raw(night / "dark_3.fits", "dark", rng=rng, dit=3.0, nframe=4,
+              header_extra={"NFRAME": 6, "EXPTIME": 18.0}, mjd=61000.015)
+    # ... and a truncated science file (unreadable: listed, never planned).
+    data = (night / "sci1.fits").read_bytes()
+    (night / "sci1.fits").write_bytes(data[:5000])
+    work = tmp_path / "work"
+    run = reduce(night, work, stages=STAGES, progress=False)
+    failed = {(s, l): m for s, l, m in run.failed}
+    assert set(failed) == {("dark", "sci-low-joint-dit3"), ("consumer", "sci-low-joint-dit3")}
+    assert "dark_3.fits" in failed[("dark", "sci-low-joint-dit3")]
+    assert "SCI_PIX has 4 frames, NFRAME says 6" in failed[("dark", "sci-low-joint-dit3")]
+    assert failed[("consumer", "sci-low-joint-dit3")] == "upstream dark/sci-low-joint-dit3 failed"
+    assert [Path(p).name for p, _ in run.bad_files] == ["sci1.fits"]
+    assert run.exit_code == 1
+    assert set(run.computed) == ALL           # the rest of the night finished
+    states = _states(work)
+    assert states[("dark", "sci-low-joint-dit3")] == "failed"
+    assert states[("inventory", "sci1.fits")] == "failed"
+    # The broken file's FT table is intact, so the FT dark used it (nothing skipped).
+    ft = ProductView(next((work / "dark").glob("ft-period1ms.*.h5")))
+    assert json.loads(ft.attrs["skipped_files"]) == []
+    assert "sci1.fits" in run.text() and "dark_3.fits" in run.text()
+
+
+def test_config_errors_before_any_work(night, tmp_path):
+    work = tmp_path / "work"
+    cfg = tmp_path / "bad.toml"
+    cfg.write_text("[dark]\nkappa_sigma = 3.0\n")
+    with pytest.raises(ConfigError, match="bad.toml.*kappa_sigma"):
+        reduce(night, work, config=[cfg], stages=STAGES, progress=False)
+    cfg.write_text("[dark]\nframes_per_chunk = 'many'\n")
+    with pytest.raises(ConfigError, match=r"bad.toml: \[dark\] frames_per_chunk should be int"):
+        reduce(night, work, config=[cfg], stages=STAGES, progress=False)
+    cfg.write_text("[dark]\nkappa = -1\n")
+    with pytest.raises(ConfigError, match="kappa must be positive"):
+        reduce(night, work, config=[cfg], stages=STAGES, progress=False)
+    assert not (work / "dark").exists() and not (work / LOCK_FILE).exists()
+
+
+def test_lock(night, tmp_path):
+    work = tmp_path / "work"
+    work.mkdir()
+    import socket
+    (work / LOCK_FILE).write_text(json.dumps({"pid": os.getpid(), "host": socket.gethostname()}))
+    with pytest.raises(Locked, match="another reduction"):
+        reduce(night, work, stages=STAGES, progress=False)
+    # A lock left by a process that no longer exists is taken over.
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    (work / LOCK_FILE).write_text(json.dumps({"pid": dead.pid, "host": socket.gethostname()}))
+    assert reduce(night, work, stages=STAGES, progress=False).exit_code == 0
+    assert not (work / LOCK_FILE).exists()
+
+
+KILLED_RUN = """
+import sys
+sys.path.insert(0, {tests!r})
+from fake_stages import CONSUMER, SLOW
+from recipes import dark, inventory
+from pipeline.engine import reduce
+reduce({night!r}, {work!r}, stages=[inventory.STAGE, dark.STAGE, CONSUMER, SLOW],
+       progress=False)
+"""
+
+
+def test_killed_run_leaves_nothing_trusted(night, tmp_path):
+    work, clean = tmp_path / "work", tmp_path / "clean"
+    marker = tmp_path / "marker"
+    code = KILLED_RUN.format(tests=str(Path(__file__).parent), night=str(night), work=str(work))
+    env = dict(os.environ, TWINFIELD_TEST_MARKER=str(marker))
+    proc = subprocess.Popen([sys.executable, "-c", code], env=env, cwd=Path(__file__).parents[1])
+    try:
+        for _ in range(600):                        # wait for the slow product to be mid-write
+            if marker.exists() or proc.poll() is not None:
+                break
+            time.sleep(0.05)
+        assert marker.exists(), "the run did not reach the slow product"
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait()
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    stages = STAGES + [SLOW]
+    assert list(work.glob("slow/.*.tmp"))          # a partial file exists...
+    plan = build_plan(night, work, stages=stages)
+    assert plan.state(plan.units[("slow", "all")]) == "missing"    # ... and is not trusted
+    assert (work / LOCK_FILE).exists()             # left by the killed run
+    resumed = reduce(night, work, stages=stages, progress=False)
+    assert resumed.exit_code == 0 and ("slow", "all") in resumed.computed
+    assert not list(work.glob("*/.*.tmp"))
+    reduce(night, clean, stages=stages, progress=False)
+    for uid, pu in build_plan(night, clean, stages=stages).units.items():
+        mine = plan.units[uid]
+        assert mine.key == pu.key and is_complete(mine.path)
+        a, b = ProductView(mine.path), ProductView(pu.path)
+        for name in b.keys():
+            _assert_equal(a[name], b[name])
+
+
+def _assert_equal(a, b):
+    """Datasets equal, NaN included (field by field for tables)."""
+    for f in a.dtype.names or [None]:
+        np.testing.assert_array_equal(a[f] if f else a, b[f] if f else b)
+
+
+def test_processes_scheduler_gives_the_same_products(night, tmp_path):
+    threads = reduce(night, tmp_path / "t", stages=[inventory.STAGE, dark.STAGE],
+                     progress=False)
+    procs = reduce(night, tmp_path / "p", stages=[inventory.STAGE, dark.STAGE],
+                   scheduler="processes", workers=2, progress=False)
+    assert threads.exit_code == procs.exit_code == 0
+    for path in (tmp_path / "t" / "dark").glob("*.h5"):
+        a, b = ProductView(path), ProductView(tmp_path / "p" / "dark" / path.name)
+        _assert_equal(a["master"], b["master"])
