@@ -1,0 +1,380 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Wavelength calibration from delay scans (Fourier-transform spectroscopy).
+
+A lamp scan moves the optical path difference (OPD) ``o`` of each baseline
+through the fringes; every spectral pixel then records
+
+    I(o) = A + B env(o - o_c) cos(2 pi sigma o - theta)
+
+with ``sigma = 1 / lambda_eff`` its effective vacuum wavenumber, ``env`` the
+coherence envelope of its spectral channel (Gaussian channel of FWHM
+``delta_sigma``: ``exp(-(pi delta_sigma o)^2 / (4 ln 2))``,
+``pipeline.skymodel.smearing_envelope``) and ``theta`` an instrumental phase.
+The OPD of every sample is known from the metrology, so the samples need not be
+uniform and may undersample the fringes.
+
+Method (phase-slope estimation on the known sampling): the OPD range is cut
+into short blocks; in each block a linear least-squares fit of
+``a + C cos(2 pi sigma_0 o) + S sin(2 pi sigma_0 o)`` (valid for any sampling
+that is not degenerate at ``sigma_0``) gives a complex amplitude
+``u = C - i S = B env exp(i (2 pi (sigma - sigma_0) o - theta))``. The phase
+difference of consecutive blocks gives ``sigma - sigma_0`` without unwrapping
+(first guess ``sigma_0`` from the nominal dispersion law), a weighted linear fit
+of the block phases against OPD refines it, and a Gaussian fit of ``|u|`` against
+OPD gives a first envelope width. A final Levenberg-Marquardt fit of the full
+model to every sample (wavenumber, envelope width and centre non-linear; offset,
+slope and complex amplitude linear) removes the block approximation and gives
+the errors; the effective bandwidth is ``delta_lambda = delta_sigma lambda^2``. Fringe-tracking group-delay methods use
+the same demodulation idea (e.g. Lawson 2000, *Principles of Long Baseline
+Stellar Interferometry*, JPL 00-009, ch. 8).
+
+Axes: samples first, ``(sample, ...)``; the trailing axes (e.g. ``(trace, x)``
+or ``(output, ft_wave)``) are carried through. Metres throughout.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.polynomial import polynomial as npoly
+
+__all__ = ["ScanFit", "fit_fringe_scan", "fringe_phasor", "fit_dispersion_law",
+           "common_grid", "gaussian_envelope"]
+
+_FOUR_LN2 = 4 * np.log(2)
+
+
+def gaussian_envelope(opd_m, wave_m, bandwidth_m):
+    """Coherence envelope of a Gaussian channel (same formula as
+    ``pipeline.skymodel.smearing_envelope``). Broadcasts."""
+    dsig = np.asarray(bandwidth_m) / np.asarray(wave_m) ** 2
+    return np.exp(-(np.pi * dsig * np.asarray(opd_m)) ** 2 / _FOUR_LN2)
+
+
+@dataclass(frozen=True)
+class ScanFit:
+    """Per-pixel result of :func:`fit_fringe_scan`, each of shape ``pixel_shape``.
+
+    Attributes
+    ----------
+    wave : effective vacuum wavelength 1 / sigma, m (NaN if the pixel shows no fringes)
+    wave_err : its 1-sigma error from the phase-slope fit, m
+    bandwidth : effective FWHM bandwidth of the channel, m
+    bandwidth_err : its 1-sigma error from the envelope fit, m (large when the scan
+        covers too little of the envelope)
+    opd_centre : OPD of the envelope peak, m
+    amplitude : fringe amplitude B at the envelope peak (intensity unit)
+    phase : theta, rad -- fringe phase at OPD 0
+    snr : fringe amplitude / its noise (pixels below ``min_snr`` are NaN elsewhere)
+    """
+    wave: np.ndarray
+    wave_err: np.ndarray
+    bandwidth: np.ndarray
+    bandwidth_err: np.ndarray
+    opd_centre: np.ndarray
+    amplitude: np.ndarray
+    phase: np.ndarray
+    snr: np.ndarray
+
+
+def _block_amplitudes(intensity, opd, sigma0, n_block):
+    """Block-wise LS of a + C cos + S sin at wavenumber sigma0.
+    intensity, opd: (sample, pix); sigma0: (pix,). Returns u, o_mean, noise, ok (pix, block)."""
+    n_s, n_p = intensity.shape
+    lo, hi = opd.min(axis=0), opd.max(axis=0)
+    blk = np.clip(((opd - lo) / np.maximum(hi - lo, 1e-30) * n_block).astype(int), 0, n_block - 1)
+    idx = (np.arange(n_p)[None, :] * n_block + blk).ravel()
+    ph = 2 * np.pi * sigma0[None, :] * opd
+    c, s, y = np.cos(ph), np.sin(ph), intensity
+
+    def bsum(v):
+        return np.bincount(idx, weights=np.broadcast_to(v, (n_s, n_p)).ravel(),
+                           minlength=n_p * n_block).reshape(n_p, n_block)
+
+    n = bsum(1.0)
+    sc, ss, scc, scs, sss = bsum(c), bsum(s), bsum(c * c), bsum(c * s), bsum(s * s)
+    sy, syc, sys, syy = bsum(y), bsum(y * c), bsum(y * s), bsum(y * y)
+    so = bsum(opd)
+    m = np.stack([np.stack([n, sc, ss], -1), np.stack([sc, scc, scs], -1),
+                  np.stack([ss, scs, sss], -1)], -2)                      # (pix, block, 3, 3)
+    r = np.stack([sy, syc, sys], -1)
+    det = np.linalg.det(m)
+    # degenerate sampling (all samples at one fringe phase) or too few samples
+    ok = (n >= 6) & (np.abs(det) > 1e-6 * np.maximum(n, 1) ** 3)
+    m = np.where(ok[..., None, None], m, np.eye(3))
+    sol = np.linalg.solve(m, np.where(ok[..., None], r, 0.0)[..., None])[..., 0]
+    chi2 = syy - np.einsum("pbi,pbi->pb", sol, r)
+    resvar = np.maximum(chi2, 0) / np.maximum(n - 3, 1)
+    # variance of C and S ~ resvar * (M^-1)_11,22; average of the two
+    minv = np.linalg.inv(m)
+    noise = np.sqrt(resvar * 0.5 * (minv[..., 1, 1] + minv[..., 2, 2]))
+    u = sol[..., 1] - 1j * sol[..., 2]
+    o_mean = so / np.maximum(n, 1)
+    return np.where(ok, u, 0), o_mean, np.where(ok, noise, np.inf), ok
+
+
+def fit_fringe_scan(intensity, opd, wave_guess, *, n_block: int = 32, n_iter: int = 3,
+                    opd_span=None, bandwidth_guess=None, min_snr: float = 5.0) -> ScanFit:
+    """Effective wavelength, bandwidth, phase and amplitude of every pixel's fringes.
+
+    Parameters
+    ----------
+    intensity : array_like, shape (n_sample, *pixel_shape)
+        Detected flux per sample (e- or ADU), dark subtracted; NaN samples are not
+        allowed (drop those samples first).
+    opd : array_like, broadcastable to ``intensity``, m
+        Known OPD of each sample and pixel (metrology ``PATH_j - PATH_i`` of the
+        pixel's baseline, averaged over the sample's exposure).
+    wave_guess : array_like, shape pixel_shape, m
+        First guess (nominal law); must be within ``~0.4 / (block OPD length)`` in
+        wavenumber of the truth.
+    n_block : int -- OPD blocks over the scan (each needs >= 6 samples)
+    n_iter : int -- refinement iterations
+    opd_span : array_like, broadcastable to ``intensity``, m, optional
+        OPD travelled during each sample's exposure; the fringe amplitude is
+        corrected for the resulting ``sinc(sigma * span)`` smearing.
+    bandwidth_guess : array_like, broadcastable to pixel_shape, m, optional
+        First guess of the bandwidth where the block envelope shows no curvature
+        (scan much shorter than the coherence length); default lambda / 200.
+    min_snr : float -- blocks below this fringe SNR are left out of the fits
+
+    Returns
+    -------
+    ScanFit
+    """
+    if n_iter < 1:
+        raise ValueError(f"n_iter must be >= 1, found {n_iter}")
+    y = np.asarray(intensity, float)
+    pshape = y.shape[1:]
+    n_s = y.shape[0]
+    y = y.reshape(n_s, -1)
+    if not np.isfinite(y).all():
+        raise ValueError("intensity has non-finite samples; drop them before the fit")
+    o = np.broadcast_to(np.asarray(opd, float), (n_s, *pshape)).reshape(n_s, -1)
+    sig = 1.0 / np.asarray(wave_guess, float).reshape(-1)
+    n_p = y.shape[1]
+    if n_s < 6 * n_block:
+        n_block = max(n_s // 6, 4)
+    for it in range(n_iter + 1):
+        u, ob, noise, ok = _block_amplitudes(y, o, sig, n_block)
+        snr = np.abs(u) / noise
+        good = ok & (snr > min_snr)
+        w = np.where(good, np.abs(u) ** 2, 0.0)
+        if it == 0:
+            # consecutive-block phase differences: slope without unwrapping
+            prod = u[:, 1:] * np.conj(u[:, :-1]) * (good[:, 1:] & good[:, :-1])
+            dob = np.where(good[:, 1:] & good[:, :-1], ob[:, 1:] - ob[:, :-1], 0.0)
+            step = np.sum(np.abs(prod) * dob, 1) / np.maximum(np.sum(np.abs(prod), 1), 1e-300)
+            dsig = np.angle(prod.sum(1)) / (2 * np.pi * np.where(step > 0, step, np.inf))
+        else:
+            mean = np.sum(u * good, 1)
+            phi = np.angle(u * np.conj(mean)[:, None])
+            wsum = np.maximum(w.sum(1), 1e-300)
+            oc = np.sum(w * ob, 1) / wsum
+            sxx = np.sum(w * (ob - oc[:, None]) ** 2, 1)
+            dsig = np.sum(w * (ob - oc[:, None]) * phi, 1) / np.maximum(sxx, 1e-300) / (2 * np.pi)
+        if it < n_iter:
+            sig = sig + np.where(np.isfinite(dsig), dsig, 0.0)
+    sig = sig + np.where(np.isfinite(dsig), dsig, 0.0)
+    # envelope first guess: log|u| quadratic in OPD over blocks above 10% of the peak
+    amp = np.abs(u)
+    keep = good & (amp > 0.1 * amp.max(1, keepdims=True))
+    wl = np.where(keep, amp ** 2 / noise ** 2, 0.0)              # var(ln|u|) ~ (noise/|u|)^2
+    oscale = np.maximum(np.abs(ob).max(1, keepdims=True), 1e-30)
+    x = ob / oscale
+    basis = np.stack([np.ones_like(x), x, x * x], -1)
+    lhs = np.einsum("pb,pbi,pbj->pij", wl, basis, basis)
+    rhs = np.einsum("pb,pbi,pb->pi", wl, basis, np.log(np.maximum(amp, 1e-300)))
+    enough = keep.sum(1) >= 4
+    lhs = np.where(enough[:, None, None], lhs, np.eye(3))
+    coef = np.linalg.solve(lhs, rhs[..., None])[..., 0]
+    c2 = coef[:, 2] / oscale[:, 0] ** 2
+    c1 = coef[:, 1] / oscale[:, 0]
+    curved = enough & (c2 < 0)
+    fallback = sig / 200.0 if bandwidth_guess is None else np.broadcast_to(
+        np.asarray(bandwidth_guess, float), pshape).reshape(-1) * sig ** 2
+    dsig_ch = np.where(curved, np.sqrt(np.abs(c2) * _FOUR_LN2) / np.pi, fallback)
+    centre = np.where(curved, -c1 / (2 * np.where(curved, c2, 1.0)), 0.0)
+    centre = np.clip(centre, o.min(0), o.max(0))
+    span = None if opd_span is None else np.broadcast_to(
+        np.asarray(opd_span, float), (n_s, *pshape)).reshape(n_s, -1)
+    # final step: Gauss-Newton on every sample, in chunks of pixels (bounded memory)
+    out = {k: np.empty(n_p, dtype=complex if k == "z" else float)
+           for k in ("sig", "sig_err", "dch", "dch_err", "oc", "z", "z_err")}
+    chunk = max(1, 4_000_000 // (7 * n_s))
+    for p0 in range(0, n_p, chunk):
+        sl = slice(p0, min(n_p, p0 + chunk))
+        r = _gauss_newton(y[:, sl], o[:, sl], None if span is None else span[:, sl],
+                          sig[sl], dsig_ch[sl], centre[sl])
+        for k in out:
+            out[k][sl] = r[k]
+    sig = out["sig"]
+    wave = 1 / sig
+    snr_fit = np.abs(out["z"]) / np.maximum(out["z_err"], 1e-300)
+    valid = np.isfinite(sig) & (snr_fit > min_snr)
+    nan = np.where(valid, 1.0, np.nan)
+    return ScanFit(wave=(wave * nan).reshape(pshape),
+                   wave_err=(out["sig_err"] * wave ** 2 * nan).reshape(pshape),
+                   bandwidth=(out["dch"] * wave ** 2 * nan).reshape(pshape),
+                   bandwidth_err=(out["dch_err"] * wave ** 2 * nan).reshape(pshape),
+                   opd_centre=(out["oc"] * nan).reshape(pshape),
+                   amplitude=(np.abs(out["z"]) * nan).reshape(pshape),
+                   phase=(np.angle(out["z"]) * nan).reshape(pshape),
+                   snr=snr_fit.reshape(pshape))
+
+
+def _gauss_newton(y, o, span, sig, dch, oc, n_iter=8):
+    """Levenberg-Marquardt fit of A0 + A1 o + env(o - oc) s(sig) Re[Z e^{-2 pi i sig o}]
+    per pixel. y, o, span: (sample, pix); sig, dch, oc: (pix,)."""
+    n_s, n_p = y.shape
+    oscale = np.maximum(np.abs(o).max(0), 1e-30)
+    sig, dch, oc = sig.copy(), np.abs(dch).copy(), oc.copy()
+    k4 = np.pi ** 2 / _FOUR_LN2
+    for it in range(n_iter + 1):
+        xo = o - oc
+        env = np.exp(-k4 * (dch * xo) ** 2)
+        if span is not None:
+            env = env * np.sinc(sig * span)
+        ph = 2 * np.pi * sig * o
+        c, s = np.cos(ph), np.sin(ph)
+        lin_b = np.stack([np.ones_like(o), o / oscale, env * c, env * s], -1)
+        m = np.einsum("spi,spj->pij", lin_b, lin_b)
+        lin = np.linalg.solve(m + 1e-12 * np.eye(4) * np.trace(m, axis1=1, axis2=2)[:, None, None],
+                              np.einsum("spi,sp->pi", lin_b, y)[..., None])[..., 0]
+        fr = lin[:, 2] * c + lin[:, 3] * s
+        dfr = -lin[:, 2] * s + lin[:, 3] * c
+        jac = np.concatenate([lin_b, np.stack([env * dfr * 2 * np.pi * o,
+                                               env * fr * (-2 * k4 * dch * xo ** 2),
+                                               env * fr * (2 * k4 * dch ** 2 * xo)], -1)], -1)
+        res = y - np.einsum("spi,pi->sp", lin_b, lin)
+        jtj = np.einsum("spi,spj->pij", jac, jac)
+        norm = np.sqrt(np.maximum(np.einsum("pii->pi", jtj), 1e-300))
+        jtj_n = jtj / norm[:, :, None] / norm[:, None, :]
+        if it == n_iter:
+            break
+        g = np.einsum("spi,sp->pi", jac, res) / norm
+        step = np.linalg.solve(jtj_n + 1e-3 * np.eye(7), g[..., None])[..., 0] / norm
+        sig = sig + np.clip(step[:, 4], -0.05 / oscale, 0.05 / oscale)
+        dch = np.abs(dch + np.clip(step[:, 5], -0.5 * dch, 0.5 * dch))
+        oc = oc + np.clip(step[:, 6], -0.2 / np.maximum(dch, 1e-30), 0.2 / np.maximum(dch, 1e-30))
+    resvar = np.sum(res ** 2, 0) / max(n_s - 7, 1)
+    cov = np.linalg.pinv(jtj_n) / norm[:, :, None] / norm[:, None, :] * resvar[:, None, None]
+    return {"sig": sig, "sig_err": np.sqrt(np.abs(cov[:, 4, 4])), "dch": dch,
+            "dch_err": np.sqrt(np.abs(cov[:, 5, 5])), "oc": oc,
+            "z": lin[:, 2] + 1j * lin[:, 3],
+            "z_err": np.sqrt(0.5 * np.abs(cov[:, 2, 2] + cov[:, 3, 3]))}
+
+
+def fringe_phasor(intensity, opd, wave, bandwidth, *, opd_centre=0.0, opd_span=None,
+                  variance=None):
+    """Linear least-squares fringe phasor of every pixel with known wavelength and envelope.
+
+    Fits ``I = A0 + A1 o / o_max + env(o - o_c) s Re[Z exp(-2 pi i o / lambda)]`` where
+    ``s = sinc(span / lambda)`` is the exposure smearing; ``Z = |Z| exp(i theta)``
+    is the complex fringe amplitude at the envelope peak.
+
+    Parameters
+    ----------
+    intensity : array_like, shape (n_sample, *pixel_shape)
+    opd, opd_span : array_like, broadcastable to ``intensity``, m
+    wave, bandwidth, opd_centre : array_like, broadcastable to pixel_shape, m
+    variance : array_like, broadcastable to ``intensity``, optional (weights 1/variance)
+
+    Returns
+    -------
+    z : ndarray complex, pixel_shape -- fringe phasor (intensity unit)
+    z_var : ndarray, pixel_shape -- variance of each of Re z and Im z (mean of the two)
+    dc : ndarray, pixel_shape -- A0, the mean incoherent flux
+    """
+    y = np.asarray(intensity, float)
+    pshape = y.shape[1:]
+    n_s = y.shape[0]
+    y = y.reshape(n_s, -1)
+    o = np.broadcast_to(np.asarray(opd, float), (n_s, *pshape)).reshape(n_s, -1)
+    lam = np.broadcast_to(np.asarray(wave, float), pshape).reshape(-1)
+    bw = np.broadcast_to(np.asarray(bandwidth, float), pshape).reshape(-1)
+    oc = np.broadcast_to(np.asarray(opd_centre, float), pshape).reshape(-1)
+    env = gaussian_envelope(o - oc, lam, bw)
+    if opd_span is not None:
+        span = np.broadcast_to(np.asarray(opd_span, float), (n_s, *pshape)).reshape(n_s, -1)
+        env = env * np.sinc(span / lam)
+    ph = 2 * np.pi * o / lam
+    omax = np.maximum(np.abs(o).max(0), 1e-30)
+    basis = np.stack([np.ones_like(o), o / omax, env * np.cos(ph), env * np.sin(ph)], -1)
+    w = np.ones_like(y) if variance is None else 1 / np.broadcast_to(
+        np.asarray(variance, float), (n_s, *pshape)).reshape(n_s, -1)
+    lhs = np.einsum("sp,spi,spj->pij", w, basis, basis)
+    rhs = np.einsum("sp,spi,sp->pi", w, basis, y)
+    cov = np.linalg.inv(lhs)
+    sol = (cov @ rhs[..., None])[..., 0]
+    if variance is None:       # scale by the residual variance
+        res = y - np.einsum("spi,pi->sp", basis, sol)
+        cov = cov * (np.sum(res ** 2, 0) / max(n_s - 4, 1))[:, None, None]
+    # Re[Z e^{-i ph}] = Re Z cos(ph) + Im Z sin(ph)
+    z = sol[:, 2] + 1j * sol[:, 3]
+    z_var = 0.5 * (cov[:, 2, 2] + cov[:, 3, 3])
+    return z.reshape(pshape), z_var.reshape(pshape), sol[:, 0].reshape(pshape)
+
+
+def fit_dispersion_law(wave_measured, wave_err, *, deg: int = 3, clip: float = 4.0,
+                       n_iter: int = 5):
+    """Smooth per-trace law lambda(x): weighted polynomial with sigma clipping.
+
+    Parameters
+    ----------
+    wave_measured, wave_err : array_like, shape (n_trace, n_x), m (NaN = no measurement)
+    deg : int -- polynomial degree in ``(x - x_ref) / x_scale`` (lowest order first)
+    clip : float -- rejection threshold in robust standard deviations (normalised residuals)
+
+    Returns
+    -------
+    law : ndarray (n_trace, n_x), m -- the polynomial evaluated at every column
+    coeffs : ndarray (n_trace, deg + 1), m
+    used : ndarray (n_trace, n_x) bool -- measurements kept
+    x_ref, x_scale : float, px
+    """
+    wm = np.asarray(wave_measured, float)
+    we = np.asarray(wave_err, float)
+    n_t, n_x = wm.shape
+    x = np.arange(n_x, dtype=float)
+    x_ref, x_scale = (n_x - 1) / 2, max((n_x - 1) / 2, 1.0)
+    xs = (x - x_ref) / x_scale
+    deg = min(deg, max(n_x - 2, 0))
+    usable = np.isfinite(wm) & np.isfinite(we) & (we > 0)
+    coeffs = np.full((n_t, deg + 1), np.nan)
+    used = usable.copy()
+    for k in range(n_t):          # loop over traces only; each a small fit
+        u = usable[k].copy()
+        for _ in range(n_iter):
+            if u.sum() <= deg:
+                raise ValueError(f"trace {k}: only {int(u.sum())} usable wavelength "
+                                 f"measurements for a degree-{deg} law")
+            coeffs[k] = npoly.polyfit(xs[u], wm[k, u], deg, w=1 / we[k, u])
+            z = (wm[k] - npoly.polyval(xs, coeffs[k])) / we[k]
+            scale = max(1.4826 * np.median(np.abs(z[u])), 1.0)
+            new = usable[k] & (np.abs(z) < clip * scale)
+            if np.array_equal(new, u):
+                break
+            u = new
+        used[k] = u
+    law = np.stack([npoly.polyval(xs, coeffs[k]) for k in range(n_t)])
+    return law, coeffs, used, float(x_ref), float(x_scale)
+
+
+def common_grid(wave_pixel):
+    """Common wavelength grid of a channel: the median over traces of each column's
+    wavelength, made strictly increasing.
+
+    Parameters
+    ----------
+    wave_pixel : array_like, shape (n_trace, n_x), m
+
+    Returns
+    -------
+    grid : ndarray (n_x,), m
+    """
+    g = np.median(np.asarray(wave_pixel, float), axis=0)
+    if np.any(np.diff(g) <= 0):
+        raise ValueError("median wavelength law is not increasing along x")
+    return g
