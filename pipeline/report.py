@@ -62,7 +62,6 @@ def _exposure_figure(view, outdir: Path, idx: int) -> str:
     for p in range(v2.shape[0]):
         ax[0, 1].errorbar(f.ravel(), v2[p].ravel(), e2[p].ravel(), fmt=".", ms=2, lw=0.5,
                           alpha=0.6, label="data" if p == 0 else None)
-    order = np.argsort(f, axis=None)
     for b in range(f.shape[0]):
         ax[0, 1].plot(f[b], m2[b], "k-", lw=0.8, label="model" if b == 0 else None)
     ax[0, 1].set(xlabel="spatial frequency [Mlambda]", ylabel="V2", title="squared visibility")
@@ -100,8 +99,9 @@ def _exposure_figure(view, outdir: Path, idx: int) -> str:
     cmap = view["chi2_map"]
     gx, gy = view["grid_dra"], view["grid_ddec"]
     best = np.nanmin(cmap)
-    im = ax[1, 1].imshow(np.log10(cmap - best + 1), origin="lower", cmap="magma_r",
-                         extent=(gx[0], gx[-1], gy[0], gy[-1]))
+    shown = np.log10(cmap - best + 1)
+    im = ax[1, 1].imshow(shown, origin="lower", cmap="magma_r", vmin=0,
+                         vmax=np.nanpercentile(shown, 90), extent=(gx[0], gx[-1], gy[0], gy[-1]))
     ax[1, 1].set_xlim(gx[-1], gx[0])   # East to the left, as on the sky
     mins = view["minima"]
     ax[1, 1].plot(mins[:, 0], mins[:, 1], "c+", ms=8, label="grid minima")
@@ -137,16 +137,24 @@ def _night_figure(table, outdir: Path) -> str | None:
     plt = _plt()
     t = table
     good = np.asarray(t["flag"]) == 0
-    fig, ax = plt.subplots(2, 2, figsize=(12, 7), sharex=True)
+    fig, ax = plt.subplots(2, 3, figsize=(15, 7), sharex=True)
     hours = (np.asarray(t["mjd"]) - np.floor(np.nanmin(t["mjd"]))) * 24
-    for a_, col in ((ax[0, 0], "dra"), (ax[0, 0], "ddec"), (ax[0, 1], "sep"), (ax[1, 0], "pa"),
-                    (ax[1, 1], "flux_ratio")):
-        y, e = np.asarray(t[col]), np.asarray(t[col + "_err"])
-        a_.errorbar(hours[good], y[good], e[good], fmt="o", ms=4, label=f"{col}")
-        a_.errorbar(hours[~good], y[~good], e[~good], fmt="x", color="red", ms=6,
-                    label=f"{col} (flagged)" if (~good).any() else None)
-        a_.set_ylabel(f"{col} [{t[col].unit or ''}]")
-        a_.legend(fontsize=7)
+    for a_, col, scale, unit in ((ax[0, 0], "dra", 1e3, "uas"), (ax[0, 1], "ddec", 1e3, "uas"),
+                                 (ax[0, 2], "sep", 1e3, "uas"), (ax[1, 0], "pa", 1.0, "deg"),
+                                 (ax[1, 1], "flux_ratio", 1.0, "")):
+        y, e = np.asarray(t[col], float), np.asarray(t[col + "_err"], float)
+        ref = np.nanmedian(y)
+        y, e = (y - ref) * scale, e * scale
+        a_.errorbar(hours[good], y[good], e[good], fmt="o", ms=4)
+        if (~good).any():
+            a_.errorbar(hours[~good], y[~good], e[~good], fmt="x", color="red", ms=6)
+        a_.axhline(0, color="grey", lw=0.6)
+        a_.set_title(f"{col} - {ref:.5g}", fontsize=9)
+        a_.set_ylabel(f"{col} - median [{unit}]")
+    ax[1, 2].plot(hours[good], np.asarray(t["chi2_red"])[good], "o")
+    ax[1, 2].plot(hours[~good], np.asarray(t["chi2_red"])[~good], "x", color="red")
+    ax[1, 2].axhline(1, color="grey", lw=0.6)
+    ax[1, 2].set_ylabel("reduced chi2")
     for a_ in ax[1]:
         a_.set_xlabel("hours since MJD floor (UTC)")
     fig.suptitle("astrometry of the night (red crosses: flagged)")
@@ -172,11 +180,11 @@ def _qc_figure(qc: dict, binaries, outdir: Path) -> str | None:
     for v in qc.get("combiner", []):
         if "condition" in v:
             panels.append(("combiner condition number", np.asarray(v["condition"]), "pol"))
-    rej = [(b.attrs.get("exposure", ""), b.attrs.get("frac_rejected", np.nan)) for b in binaries]
-    for v in qc.get("reference", []):
-        if "frame_valid" in v:
-            fv = np.asarray(v["frame_valid"], bool)
-            rej.append((str(v.attrs.get("label", "")), 1 - fv.mean()))
+    rej = [(str(v.attrs.get("label", "")), 1 - np.asarray(v["frame_valid"], bool).mean())
+           for v in qc.get("reference", []) if "frame_valid" in v]
+    if not rej:      # else the science exposures' own record (calibrate product attribute)
+        rej = [(b.attrs.get("exposure", ""), b.attrs.get("frac_rejected", np.nan))
+               for b in binaries]
     if not panels and not any(np.isfinite(r[1]) for r in rej):
         return None
     n = len(panels) + 1
