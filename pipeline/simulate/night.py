@@ -20,7 +20,7 @@ from astropy.time import Time, TimeDelta
 
 from ..geometry import hour_angle_rad, uvw_from_enu
 from ..instrument import Instrument, load_instrument
-from ..skymodel import MAS
+from ..skymodel import MAS, fibre_coupling
 from .combine import detected, detected_polar
 from .detector import make_detector, read_out, trace_profiles
 from .scenario import Exposure, Scenario, load_scenario
@@ -434,6 +434,8 @@ def _target_truth(w, tg, t_start, dit, events):
            "flux_ratio": tg.flux_ratio, "diameter_mas": tg.diameter_mas,
            "kmag": tg.kmag, "ft_object": tg.ft_name, "ft_kmag": tg.ft_kmag,
            "ft_offset_arcsec": list(tg.ft_offset_arcsec)}
+    comps = field_components(tg)
+    out["coupling_2p2um"] = [float(fibre_coupling(c.x, c.y, 2.2e-6, w.fibre_fwhm)) for c in comps]
     rejected = []
     for f, t0 in enumerate(t_start):
         if any(ev["t_start"] < t0 + dit and ev["t_end"] > t0 for ev in events):

@@ -101,7 +101,7 @@ _DEFAULTS = {
                "phase_error_deg": 10.0, "contrast_range": [0.8, 0.98],
                "trace_offset_px": 0.3, "trace_tilt_px": 1.0, "trace_curvature_px": 0.4,
                "trace_sigma_scatter": 0.05, "dispersion_shift_px": 1.0,
-               "dispersion_scale": 0.005, "lsf_scatter": 0.05, "pixel_response_rms": 0.02,
+               "dispersion_scale": 0.005, "dispersion_quad_px": 0.3, "lsf_scatter": 0.05, "pixel_response_rms": 0.02,
                "ft_wave_shift_px": 0.2, "ft_pixel_response_rms": 0.02},
     "lamp": {"temperature_k": 3000.0, "photon_rate_per_nm": 2.0e5, "beam_scatter": 0.1,
              "ft_factor": 1.0},

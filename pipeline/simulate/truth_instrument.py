@@ -176,7 +176,7 @@ def science_channel(instrument: Instrument, setup_name: str, polmode: str, laws:
     trace_sigma = sig0[:, None] * (1 + sig1[:, None] * xr)
     shift = errors["dispersion_shift_px"] * rng.uniform(-1, 1, n_tr)
     scale = errors["dispersion_scale"] * rng.standard_normal(n_tr)
-    quad = 0.3 * rng.uniform(-1, 1, n_tr)          # px of quadratic departure at the edges
+    quad = errors["dispersion_quad_px"] * rng.uniform(-1, 1, n_tr)          # px of quadratic departure at the edges
     disp = s.dispersion_m_per_px
 
     def law(xs):
