@@ -48,14 +48,34 @@ def v2pm_from_truth(trans, theta, contrast):
     return v
 
 
+def frame_uvw(ext, instrument):
+    """(u, v, w) of every baseline at each science frame's mid-time, (frame, baseline, 3) m."""
+    mid = ext["frame_start"] + 0.5 * ext["frame_exp"]
+    t = Time(ext.attrs["date_obs"], scale="utc") + mid * u.s
+    h = hour_angle_rad(t, ext.attrs["ra_deg"], instrument.site.longitude_deg)
+    return uvw_from_enu(instrument.baseline_enu_m, h, np.deg2rad(ext.attrs["dec_deg"]),
+                        np.deg2rad(instrument.site.latitude_deg))
+
+
+def expected_phasor(ext, instrument, file_truth, night_truth):
+    """Calibrator phasor about the science fibre (primary offset, pipeline.skymodel sign
+    convention) times the metrology zero-point exp(2 pi i (c_j - c_i) / lambda),
+    (frame, baseline, wave)."""
+    uvw, wave = frame_uvw(ext, instrument), ext["wave"]
+    x, y = (v * MAS for v in file_truth["primary_offset_mas"])
+    zero = np.array(night_truth["instrument"]["metrology_zero_m"])
+    return (point_phasor(uvw[..., 0, None], uvw[..., 1, None], wave, x, y)
+            * np.exp(2j * np.pi * (zero[J] - zero[I])[:, None] / wave))
+
+
 class Product(dict):
     """A stand-in product: arrays by name plus attributes."""
     attrs: dict = {}
 
 
-@pytest.fixture(scope="module")
-def night(tiny_night, instrument):
-    night = Path(tiny_night)
+def calibrated_night(night, instrument):
+    """Inventory, truth and the calibration products of a simulated night."""
+    night = Path(night)
     truth = json.loads((night / "truth.json").read_text())
     inv = Inventory.scan(night)
     darks = inv.select("dark")
@@ -91,20 +111,30 @@ def night(tiny_night, instrument):
 
 
 @pytest.fixture(scope="module")
+def night(tiny_night, instrument):
+    return calibrated_night(tiny_night, instrument)
+
+
+def extract_and_reference(night, rec, instrument, workdir, **ref_params):
+    """Run both stages on one exposure through a written ``extract`` product."""
+    units = extract.plan(night["inv"], extract.ExtractParams(), {})
+    unit = [x for x in units if x.label == rec.name][0]
+    inputs = Inputs(unit, [RawExposure(p) for p in unit.raw], night["products"], instrument)
+    out = extract.run(inputs, extract.ExtractParams(ft_frames_per_chunk=128))
+    ext = ProductView(write_product(Path(workdir) / f"{rec.name}.h5", out, {"key": "k"}))
+    ref = reference.run(Inputs(Unit(rec.name), [], {"extract": ext}, instrument),
+                        reference.ReferenceParams(**ref_params))
+    return unit, ext, {k: getattr(v, "data", v) for k, v in ref.items()}
+
+
+@pytest.fixture(scope="module")
 def calibrator(night, instrument, tmp_path_factory):
     rec = night["inv"].select("calibrator")[0]
     sky = night["inv"].select("sky")[0]
-    units = extract.plan(night["inv"], extract.ExtractParams(), {})
-    unit = [x for x in units if x.label == rec.name][0]
+    unit, ext, ref = extract_and_reference(night, rec, instrument,
+                                           tmp_path_factory.mktemp("extract"))
     assert unit.raw == (rec.path, sky.path)      # nearest sky of the same set-up and DIT
-    inputs = Inputs(unit, [RawExposure(p) for p in unit.raw], night["products"], instrument)
-    out = extract.run(inputs, extract.ExtractParams(ft_frames_per_chunk=128))
-    path = write_product(tmp_path_factory.mktemp("extract") / "cal.h5", out, {"key": "k"})
-    ext = ProductView(path)
-    ref = reference.run(Inputs(Unit(rec.name), [], {"extract": ext}, instrument),
-                        reference.ReferenceParams())
-    return dict(rec=rec, ext=ext, ref={k: getattr(v, "data", v) for k, v in ref.items()},
-                truth=night["truth"]["files"][Path(rec.path).name])
+    return dict(rec=rec, ext=ext, ref=ref, truth=night["truth"]["files"][Path(rec.path).name])
 
 
 def test_extract_product_contents(calibrator):
@@ -142,10 +172,7 @@ def test_calibrator_is_point_like_after_correction(calibrator, instrument):
     # ratio of sums over frames (as the averaging stage does), per baseline and wavelength
     v = (np.abs(c).sum(0) / (loss * np.sqrt(flux[:, I] * flux[:, J])).sum(0))
     wave = ext["wave"]
-    t = Time(ext.attrs["date_obs"], scale="utc") + (ext["frame_start"].mean() + 0.05) * u.s
-    h = hour_angle_rad(t, ext.attrs["ra_deg"], instrument.site.longitude_deg)
-    uvw = uvw_from_enu(instrument.baseline_enu_m, h, np.deg2rad(ext.attrs["dec_deg"]),
-                       np.deg2rad(instrument.site.latitude_deg))[0]
+    uvw = frame_uvw(ext, instrument).mean(axis=0)
     # uniform disk 2 J1(x)/x with the true diameter (Born & Wolf 8.5.2, pipeline.skymodel)
     v_ud = uniform_disk_visibility(uvw[:, 0, None], uvw[:, 1, None], wave,
                                    truth["diameter_mas"] * MAS)
@@ -161,26 +188,17 @@ def test_calibrator_is_point_like_after_correction(calibrator, instrument):
 
 def test_referenced_phase_equals_sky_phase(calibrator, night, instrument):
     """Referencing removes the residual path and the dual-field delay: what remains is the
-    calibrator's own phase (primary offset from the fibre centre, pipeline.skymodel sign
-    convention) plus the metrology zero-point 2 pi (c_j - c_i) / lambda (truth)."""
-    ref, ext, truth = calibrator["ref"], calibrator["ext"], calibrator["truth"]
-    wave = ext["wave"]
-    mid = ext["frame_start"] + 0.5 * ext["frame_exp"]
-    t = Time(ext.attrs["date_obs"], scale="utc") + mid * u.s
-    h = hour_angle_rad(t, ext.attrs["ra_deg"], instrument.site.longitude_deg)
-    uvw = uvw_from_enu(instrument.baseline_enu_m, h, np.deg2rad(ext.attrs["dec_deg"]),
-                       np.deg2rad(instrument.site.latitude_deg))
-    x, y = (v * MAS for v in truth["primary_offset_mas"])
-    model = point_phasor(uvw[..., 0, None], uvw[..., 1, None], wave, x, y)
-    zero = np.array(night["truth"]["instrument"]["metrology_zero_m"])
-    expected = model * np.exp(2j * np.pi * (zero[J] - zero[I])[:, None] / wave)
+    calibrator's own phase plus the metrology zero-point (truth)."""
+    ref, ext = calibrator["ref"], calibrator["ext"]
+    expected = expected_phasor(ext, instrument, calibrator["truth"], night["truth"])
     dphi = np.angle(ref["coherent_ref"][:, 0] * np.conj(expected))
     # per frame and wavelength: science phase noise (SNR ~ 30) and FT path noise
     # (~15 nm -> 0.04 rad) -> 0.25 rad is > 4 sigma; the mean is much tighter
     assert np.abs(dphi).max() < 0.25
     assert np.abs(np.angle(np.exp(1j * dphi).mean(axis=(0, 2)))).max() < 0.05
     # the metrology term is exercised: its zero points alone are tens of radians
-    assert np.abs(2 * np.pi * (zero[J] - zero[I]) / wave.mean()).max() > 10
+    zero = np.array(night["truth"]["instrument"]["metrology_zero_m"])
+    assert np.abs(2 * np.pi * (zero[J] - zero[I]) / ext["wave"].mean()).max() > 10
 
 
 def test_bad_combiner_product_names_the_file(night, instrument):
@@ -206,3 +224,63 @@ def test_plans(night):
         extract.ExtractParams(clip=2.0)
     with pytest.raises(ValueError, match="max_group_delay_um"):
         reference.ReferenceParams(max_group_delay_um=100.0)
+
+
+EVENT_SEQUENCE = """
+[[sequence]]
+kind = "calibrator"
+target = "Kessa-C1"
+setup = "low"
+dit = 0.1
+nframe = 40
+gap_s = 0.0
+"""
+
+
+@pytest.fixture(scope="module")
+def events(instrument, tmp_path_factory):
+    """A 4 s calibrator exposure with frequent fringe jumps and lock losses: the tiny
+    scenario with the event rates raised to 40 per minute each (seed 1 draws four lock
+    losses and two jumps of telescope 0)."""
+    import re
+    from pipeline.instrument import CALIB_DIR
+    from pipeline.simulate import simulate_night
+    text = (CALIB_DIR / "scenarios" / "tiny.toml").read_text()
+    text, n = re.subn(r"(?m)^(jump|lockloss)_rate_per_min = .*$", r"\1_rate_per_min = 40.0", text)
+    assert n == 2, "tiny.toml no longer sets both event rates"
+    text = text[:text.index("[[sequence]]")] + EVENT_SEQUENCE
+    root = tmp_path_factory.mktemp("events")
+    (root / "events.toml").write_text(text.replace('name = "tiny"', 'name = "tiny-events"'))
+    path = simulate_night(root / "night", scenario=root / "events.toml", seed=1)
+    night = calibrated_night(path, instrument)
+    rec = night["inv"].select("calibrator")[0]
+    _, ext, ref = extract_and_reference(night, rec, instrument, root)
+    return dict(night=night, ext=ext, ref=ref, truth=night["truth"]["files"][Path(rec.path).name])
+
+
+def test_lock_losses_and_jumps_are_rejected(events, instrument):
+    ref, ext, truth = events["ref"], events["ext"], events["truth"]
+    valid = ref["frame_valid"]
+    start, exp = ext["frame_start"], ext["frame_exp"]
+    kinds = {e["kind"] for e in truth["ft_events"]}
+    assert kinds == {"lock_loss", "jump"}
+    # truth: a frame overlapping an event is spoilt on every baseline (lock loss) or on the
+    # three baselines of the jumping telescope (its path moved by one FT wavelength)
+    expected_bad = np.zeros(valid.shape, bool)
+    for e in truth["ft_events"]:
+        hit = (e["t_start"] < start + exp) & (e["t_end"] > start)
+        tels = range(4) if e["telescope"] < 0 else [e["telescope"]]
+        on = np.array([i in tels or j in tels for i, j in BASELINES])
+        expected_bad |= hit[:, None] & on[None, :]
+    assert not (valid & expected_bad).any()            # every spoilt frame is rejected
+    # the guard band and running-median window (about 20 FT frames) may spill into the
+    # next frame: allow a few false rejections, never more than 10 % of the clean frames
+    false = ~valid & ~expected_bad
+    assert false.sum() <= 0.1 * (~expected_bad).sum()
+    # their exclusion matters: the kept frames have the sky phase, the rejected do not
+    expected = expected_phasor(ext, instrument, truth, events["night"]["truth"])
+    dphi = np.abs(np.angle(ref["coherent_ref"][:, 0] * np.conj(expected)))   # (frame, bl, w)
+    assert dphi[np.broadcast_to(valid[..., None], dphi.shape)].max() < 0.25
+    assert dphi[np.broadcast_to(expected_bad[..., None], dphi.shape)].max() > 1.0
+    assert ref["lock_loss_fraction"] > 0 and ref["fringe_jump_fraction"] > 0
+    assert max(ref["frame_rejected_fraction"]) > 0.3
