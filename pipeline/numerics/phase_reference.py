@@ -270,7 +270,7 @@ def window_mean(values, sample_time, frame_start, frame_exp):
     return np.where(n > 0, _window_sum(v, lo, hi) / np.maximum(n, 1), interp)
 
 
-def mean_phasor(opd, lo, hi, wave):
+def mean_phasor(opd, lo, hi, wave, *, block: int = 1024):
     """Mean phasor <exp(-2 pi i opd / lambda)> over each science frame.
 
     Parameters
@@ -279,6 +279,7 @@ def mean_phasor(opd, lo, hi, wave):
     lo, hi : array_like, shape (n_frame,), int, FT frames of each science frame
         (:func:`frame_windows`)
     wave : array_like, shape (n_wave,), m, science wavelengths
+    block : int, FT frames summed at a time (memory ~ block * n_base * n_wave * 16 bytes)
 
     Returns
     -------
@@ -290,9 +291,14 @@ def mean_phasor(opd, lo, hi, wave):
     opd = np.asarray(opd, float)
     k = -2 * np.pi / np.asarray(wave, float)
     out = np.full((len(lo), opd.shape[1], k.size), np.nan + 0j)
+    if block < 1:
+        raise ValueError(f"block must be >= 1, found {block}")
     for f, (a, b) in enumerate(zip(lo, hi)):       # loop over science frames only
         if b > a:
-            out[f] = np.exp(1j * opd[a:b, :, None] * k).mean(axis=0)
+            acc = np.zeros(out.shape[1:], complex)
+            for c in range(a, b, block):
+                acc += np.exp(1j * opd[c:min(b, c + block), :, None] * k).sum(axis=0)
+            out[f] = acc / (b - a)
     return out
 
 
