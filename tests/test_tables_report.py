@@ -142,3 +142,40 @@ def test_report_html_and_pngs(night, instrument):
         import matplotlib.image
         img = matplotlib.image.imread(work / "report" / name)
         assert img.ndim == 3 and img.shape[0] > 100 and img.shape[1] > 100
+
+
+def _chain():
+    import recipes
+    names = [s.name for s in recipes.STAGES]
+    if "reference" not in names:
+        pytest.skip("the stages up to reference are not registered yet")
+    from recipes import average, calibrate
+    extra = [s.STAGE for s in (average, calibrate, binary, tables, report)
+             if s.STAGE.name not in names]
+    return list(recipes.STAGES) + extra
+
+
+@pytest.mark.slow
+def test_tiny_night_end_to_end(request, tmp_path_factory, instrument):
+    # Simulated `tiny` night against its truth file (docs/truth.md): companion offset
+    # within the 3-sigma ellipse (Mahalanobis d^2 < 11.8, 2 dof), flux ratio within
+    # 3 sigma, and the tables and report written.
+    from pathlib import Path
+    from pipeline.engine import reduce
+    stages = _chain()
+    night = Path(request.getfixturevalue("tiny_night"))
+    work = tmp_path_factory.mktemp("work_binary")
+    summary = reduce(night, work, stages=stages, progress=False)
+    assert not [f for f in summary.failed if f[0] in ("binary", "tables", "report")]
+    truth = json.loads((night / "truth.json").read_text())
+    for path in sorted((work / "binary").glob("*.h5")):
+        a = ProductView(path).attrs
+        t = truth["files"][a["exposure"]]
+        d = np.array([a["dra"] - t["companion_dra_mas"], a["ddec"] - t["companion_ddec_mas"]])
+        d2 = d @ np.linalg.solve(np.array(json.loads(a["cov"])), d)
+        print(f"{a['exposure']}: d = {d} mas, d2 = {d2:.2f}, errors {a['dra_err']:.4f} "
+              f"{a['ddec_err']:.4f} mas, flux ratio {a['flux_ratio']:.4f} +- "
+              f"{a['flux_ratio_err']:.4f} (truth {t['flux_ratio']:.4f}), flag {a['flag']}")
+        assert d2 < 11.8
+        assert abs(a["flux_ratio"] - t["flux_ratio"]) < 3 * a["flux_ratio_err"]
+    assert (work / "astrometry.ecsv").is_file() and (work / "report" / "index.html").is_file()
