@@ -197,3 +197,31 @@ def test_processes_scheduler_gives_the_same_products(night, tmp_path):
     for path in (tmp_path / "t" / "dark").glob("*.h5"):
         a, b = ProductView(path), ProductView(tmp_path / "p" / "dark" / path.name)
         _assert_equal(a["master"], b["master"])
+
+
+def test_tiny_night_darks_against_truth(tiny_night, tmp_path):
+    """The simulated night's detectors (truth.json, written by the simulator's forward
+    model) recovered by the dark stage."""
+    work = tmp_path / "work"
+    run = reduce(tiny_night, work, stages=[inventory.STAGE, dark.STAGE], progress=False)
+    assert run.exit_code == 0 and run.failed == []
+    truth = json.loads((tiny_night / "truth.json").read_text())["instrument"]["detectors"]
+    plan = build_plan(tiny_night, work, stages=[inventory.STAGE, dark.STAGE])
+    darks = [pu for (s, _), pu in plan.units.items() if s == "dark"]
+    assert {pu.unit.meta["channel"] for pu in darks} == {"sci", "ft"}
+    for pu in darks:
+        view = ProductView(pu.path)
+        det = truth["science" if pu.unit.meta["channel"] == "sci" else "ft"]
+        master, noise, valid = view["master"], view["read_noise"], view["valid"]
+        assert view.axes("master") == (("y", "x") if pu.unit.meta["channel"] == "sci"
+                                       else ("output", "ft_wave"))
+        # Level: the bias (mean of the simulated pattern) plus a negligible dark
+        # (<= 0.05 e-/s x 0.1 s); 0.3 ADU covers sampling a 3-ADU rms pattern in a window.
+        assert abs(master[valid].mean() - det["bias_mean_adu"]) < 0.3
+        # Temporal noise: read noise / gain, plus integer rounding (variance 1/12 ADU^2).
+        # Few pairs per pixel but thousands of pixels: rms within 4 % (~5 sigma).
+        expected = np.hypot(det["read_noise_e"] / det["gain_e_per_adu"], np.sqrt(1 / 12))
+        assert abs(np.sqrt(np.mean(noise[valid] ** 2)) / expected - 1) < 0.04
+        # Hot pixels found are true hot pixels (no false alarms).
+        hot = {tuple(p) for p in np.argwhere(view["hot"])}
+        assert hot <= {tuple(p) for p in det["hot_pixels"]}
