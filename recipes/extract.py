@@ -5,6 +5,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from pipeline.errors import MissingCalibration
 from pipeline.extract_frames import exposure_facts, extract_ft, extract_science, sky_background
 from pipeline.inventory import Inventory, dark_label, ft_dark_label, sci_channel
 from pipeline.stage import Stage, Unit
@@ -28,29 +29,33 @@ class ExtractParams:
 
 
 def plan(inventory: Inventory, params: ExtractParams, upstream) -> list[Unit]:
+    planned = {(st, u.label) for st, us in upstream.items() for u in us}
     units = []
     for rec in inventory.select(("science", "calibrator", "sky")):
         ch = sci_channel(rec.setup, rec.polmode)
         skies = [] if rec.kind == "sky" or not params.subtract_sky else sorted(
             inventory.select("sky", rec.setup, rec.polmode, rec.dit),
             key=lambda s: abs(s.mjd - rec.mjd))
-        needs = {"dark": ("dark", dark_label(rec.setup, rec.polmode, rec.dit)),
-                 "ft_dark": ("dark", ft_dark_label(rec.ft_period)),
-                 "flat": ("flat", ch), "wavecal": ("wavecal", ch), "combiner": ("combiner", ch),
-                 "ft_combiner": ("combiner", "ft")}
         dk = inventory.dark_for(rec)
-        if dk is not None:
-            needs["dark"] = ("dark", dark_label(*dk))
-        if "ft" in {u.label for u in upstream.get("wavecal", [])}:
-            needs["ft_wavecal"] = ("wavecal", "ft")
+        wanted = {"dark": ("dark", dark_label(*dk) if dk else dark_label(rec.setup, rec.polmode,
+                                                                          rec.dit)),
+                  "ft_dark": ("dark", ft_dark_label(rec.ft_period)), "flat": ("flat", ch),
+                  "wavecal": ("wavecal", ch), "combiner": ("combiner", ch),
+                  "ft_combiner": ("combiner", "ft"), "ft_wavecal": ("wavecal", "ft")}
+        needs = {role: need for role, need in wanted.items() if need in planned}
+        missing = [f"{s}/{lab}" for role, (s, lab) in wanted.items()
+                   if role not in needs and role != "ft_wavecal"]
         units.append(Unit(label=rec.name, raw=(rec.path,) + tuple(s.path for s in skies[:1]),
                           needs=needs, meta={"kind": rec.kind, "setup": rec.setup,
-                                             "polmode": rec.polmode}))
+                                             "polmode": rec.polmode, "missing": missing}))
     return units
 
 
 def run(inputs, params: ExtractParams) -> dict:
     raw, prods, inst = inputs.raw[0], inputs.products, inputs.instrument
+    if inputs.unit.meta.get("missing"):
+        raise MissingCalibration(raw.path, "no calibration product "
+                                           f"{', '.join(inputs.unit.meta['missing'])}")
     sky = inputs.raw[1] if len(inputs.raw) > 1 else None
     out = extract_science(raw, dark=prods["dark"], flat=prods["flat"], wavecal=prods["wavecal"],
                           combiner=prods["combiner"], instrument=inst,

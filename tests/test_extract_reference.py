@@ -19,9 +19,9 @@ import pytest
 from astropy.time import Time
 import astropy.units as u
 
-from pipeline.errors import BadInput
+from pipeline.errors import BadInput, MissingCalibration
 from pipeline.geometry import hour_angle_rad, uvw_from_enu
-from pipeline.inventory import Inventory
+from pipeline.inventory import Inventory, dark_label, ft_dark_label, sci_channel
 from pipeline.rawio import RawExposure
 from pipeline.skymodel import MAS, point_phasor, uniform_disk_visibility
 from pipeline.stage import Inputs, Unit
@@ -115,9 +115,18 @@ def night(tiny_night, instrument):
     return calibrated_night(tiny_night, instrument)
 
 
+def upstream_units(inv):
+    """Units the calibration stages would plan for this night (labels of DEVELOPERS.md)."""
+    ch = [sci_channel(s, p) for s, p in inv.channels()]
+    return {"dark": [Unit(dark_label(*k)) for k in inv.dark_groups()]
+            + [Unit(ft_dark_label(k)) for k in inv.ft_dark_groups()],
+            "flat": [Unit(c) for c in ch], "wavecal": [Unit(c) for c in ch],
+            "combiner": [Unit(c) for c in ch] + [Unit("ft")]}
+
+
 def extract_and_reference(night, rec, instrument, workdir, **ref_params):
     """Run both stages on one exposure through a written ``extract`` product."""
-    units = extract.plan(night["inv"], extract.ExtractParams(), {})
+    units = extract.plan(night["inv"], extract.ExtractParams(), upstream_units(night["inv"]))
     unit = [x for x in units if x.label == rec.name][0]
     inputs = Inputs(unit, [RawExposure(p) for p in unit.raw], night["products"], instrument)
     out = extract.run(inputs, extract.ExtractParams(ft_frames_per_chunk=128))
@@ -212,18 +221,31 @@ def test_bad_combiner_product_names_the_file(night, instrument):
 
 def test_plans(night):
     inv = night["inv"]
-    units = {x.label: x for x in extract.plan(inv, extract.ExtractParams(), {})}
+    units = {x.label: x for x in extract.plan(inv, extract.ExtractParams(), upstream_units(inv))}
     on_sky = inv.select(("science", "calibrator", "sky"))
     assert set(units) == {r.name for r in on_sky}
     sky = inv.select("sky")[0]
     assert units[sky.name].raw == (sky.path,)          # a sky is not sky-subtracted
     assert units[sky.name].needs["ft_combiner"] == ("combiner", "ft")
+    assert units[sky.name].meta["missing"] == []
     refs = reference.plan(inv, reference.ReferenceParams(), {})
     assert {x.label for x in refs} == {r.name for r in inv.select(("science", "calibrator"))}
     with pytest.raises(ValueError, match="clip"):
         extract.ExtractParams(clip=2.0)
     with pytest.raises(ValueError, match="max_group_delay_um"):
         reference.ReferenceParams(max_group_delay_um=100.0)
+
+
+def test_missing_calibration_fails_its_exposure_only(night, instrument):
+    inv = night["inv"]
+    up = upstream_units(inv)
+    up["combiner"] = [x for x in up["combiner"] if x.label == "ft"]   # no science combiner
+    unit = extract.plan(inv, extract.ExtractParams(), up)[0]
+    assert unit.meta["missing"] == ["combiner/sci-low-joint"]
+    with pytest.raises(MissingCalibration, match="combiner/sci-low-joint") as err:
+        extract.run(Inputs(unit, [RawExposure(p) for p in unit.raw], {}, instrument),
+                    extract.ExtractParams())
+    assert err.value.path == unit.raw[0]
 
 
 EVENT_SEQUENCE = """
