@@ -141,6 +141,7 @@ def build_plan(night_dir, workdir, *, config=None, stages=None) -> Plan:
     plan = Plan(inventory.night_dir, Path(workdir).resolve(), inventory, params, stages)
     ids = {r.path: r.identity for r in inventory.records}
     bad = dict(inventory.bad)
+    problems = inventory.problems()
     salt = {"@instrument": _instrument_hash()}
     for stage in stages:
         upstream = {}
@@ -168,7 +169,10 @@ def build_plan(night_dir, workdir, *, config=None, stages=None) -> Plan:
                 up = plan.units.get((sname, label))
                 upstream_ids[role] = (sname, label)
                 if up is None:
-                    error = error or f"needs {sname}/{label}, which is not planned"
+                    why = "; ".join(f"{Path(p).name}: {m}" for p, m in problems
+                                    if p in unit.raw)
+                    error = error or (f"needs {sname}/{label}, which is not planned"
+                                      + (f" ({why})" if why else ""))
                     up_keys[role] = "absent"
                 else:
                     up_keys[role] = up.key

@@ -225,3 +225,35 @@ def test_tiny_night_darks_against_truth(tiny_night, tmp_path):
         # Hot pixels found are true hot pixels (no false alarms).
         hot = {tuple(p) for p in np.argwhere(view["hot"])}
         assert hot <= {tuple(p) for p in det["hot_pixels"]}
+
+
+def test_missing_upstream_names_the_missing_calibration(night, tmp_path, rng):
+    """A consumer of a dark that does not exist fails with the inventory's reason."""
+    from dataclasses import replace as dc_replace
+
+    from pipeline.inventory import dark_label
+    from pipeline.stage import Unit
+
+    def plan(inv, params, upstream):
+        return [Unit(label=r.name, raw=(r.path,),
+                     needs={"dark": ("dark", dark_label(r.setup, r.polmode, r.dit))})
+                for r in inv.select("science")]
+    wants = dc_replace(CONSUMER, name="wants", plan=plan)
+    write_raw(night / "long.fits", "science", rng=rng, dit=7.0, mjd=61000.3, expno=77)
+    run = reduce(night, tmp_path / "work", stages=[inventory.STAGE, dark.STAGE, wants],
+                 progress=False)
+    failed = {(s, l): m for s, l, m in run.failed}
+    assert list(failed) == [("wants", "long")]
+    assert failed[("wants", "long")] == ("needs dark/sci-low-joint-dit7, which is not planned "
+                                         "(long.fits: no dark of DIT 7 s in set-up 'low')")
+
+
+def test_distributed_scheduler_by_address(night, tmp_path):
+    """An existing dask.distributed cluster, reached by its tcp:// address."""
+    from distributed import LocalCluster
+    with LocalCluster(n_workers=1, threads_per_worker=2, processes=True,
+                      dashboard_address=None) as cluster:
+        assert cluster.scheduler_address.startswith("tcp://")
+        run = reduce(night, tmp_path / "work", stages=[inventory.STAGE, dark.STAGE],
+                     scheduler=cluster.scheduler_address, progress=False)
+    assert run.exit_code == 0 and len(run.computed) == 4
