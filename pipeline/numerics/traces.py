@@ -259,13 +259,17 @@ def fit_amplitudes(image, trace_y, profile_sigma, *, valid=None):
     return a, model_tr + bkg[None, :]
 
 
-def pixel_response(flat, trace_y, profile_sigma, *, valid=None, min_fraction: float = 0.05):
+def pixel_response(flat, trace_y, profile_sigma, *, valid=None, min_fraction: float = 0.05,
+                   smooth_deg: int | None = None):
     """Pixel response (flat field) = lamp flat / smooth model of the traces.
 
     The smooth model is the fitted profiles times their per-column amplitude
-    (:func:`fit_amplitudes`); the response is the ratio where the model exceeds
-    ``min_fraction`` of its column maximum, and exactly 1 elsewhere (too little
-    light to measure; such pixels carry no weight in optimal extraction).
+    (:func:`fit_amplitudes`), the amplitude optionally smoothed along x by a
+    polynomial of degree ``smooth_deg`` per trace (then the response also carries
+    each column's mean response, which extraction then removes from the spectra);
+    the response is the ratio where the model exceeds ``min_fraction`` of its
+    column maximum, and exactly 1 elsewhere (too little light to measure; such
+    pixels carry no weight in optimal extraction).
 
     Parameters
     ----------
@@ -273,14 +277,24 @@ def pixel_response(flat, trace_y, profile_sigma, *, valid=None, min_fraction: fl
     trace_y, profile_sigma : array_like, shape (n_trace, n_x), px
     valid : array_like of bool, shape (n_y, n_x), optional
     min_fraction : float in (0, 1)
+    smooth_deg : int or None -- degree of the smoothing polynomial in x (None: none)
 
     Returns
     -------
     response : ndarray (n_y, n_x), dimensionless, 1 on average within traces
-    lamp_spectrum : ndarray (n_trace, n_x) -- the amplitudes (flat unit per column)
+    lamp_spectrum : ndarray (n_trace, n_x) -- the (smoothed) amplitudes (flat unit)
     """
     image, valid = _check_image(flat, valid, "flat")
     amp, model = fit_amplitudes(image, trace_y, profile_sigma, valid=valid)
+    if smooth_deg is not None:
+        n_x = image.shape[1]
+        xs = (np.arange(n_x) - (n_x - 1) / 2) / max((n_x - 1) / 2, 1)
+        w = np.where(amp > 0, 1.0, 0.0)
+        coeffs, _ = _robust_polyfit(xs, amp, w, min(smooth_deg, n_x - 2))
+        smooth = np.stack([npoly.polyval(xs, c) for c in coeffs])
+        prof = trace_profiles(trace_y, profile_sigma, n_y=image.shape[0])
+        model = np.einsum("kyx,kx->yx", prof, smooth)    # no background: dark-subtracted flat
+        amp = smooth
     lit = (model > min_fraction * model.max(axis=0, keepdims=True)) & valid & (model > 0)
     response = np.ones_like(image)
     np.divide(image, model, out=response, where=lit)
