@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import logging
 import sys
 from pathlib import Path
 
@@ -113,7 +114,12 @@ def _cmd_status(args) -> int:
 def main(argv=None) -> int:
     parser = _parser()
     args = parser.parse_args(argv)          # usage errors exit 2 (argparse)
-    from .engine import Locked, MissingCalibrations
+    from .engine import Locked, MissingCalibrations, log
+    console = logging.StreamHandler(sys.stderr)     # what is missing, before the heavy work
+    console.setLevel(logging.DEBUG if args.debug else logging.WARNING)
+    console.addFilter(lambda record: not getattr(record, "file_only", False))
+    console.setFormatter(logging.Formatter("twinfield: %(levelname)s: %(message)s"))
+    log.addHandler(console)
     try:
         return {"simulate": _cmd_simulate, "plan": _cmd_plan, "reduce": _cmd_reduce,
                 "status": _cmd_status, "rerun": _cmd_rerun}[args.command](args)
@@ -131,6 +137,8 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("twinfield: interrupted", file=sys.stderr)
         return 130
+    finally:
+        log.removeHandler(console)
 
 
 if __name__ == "__main__":

@@ -405,7 +405,8 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
             for (uid, _), res in zip(tasks, results):
                 if res["state"] == "failed":
                     summary.failed.append((uid[0], uid[1], res["message"]))
-                    log.error("FAILED %s/%s %s: %s", uid[0], uid[1], res["key"], res["message"])
+                    log.error("FAILED %s/%s %s: %s", uid[0], uid[1], res["key"], res["message"],
+                              extra={"file_only": True})      # the summary repeats it
                     if res.get("traceback") and debug:
                         log.debug(res["traceback"])
                 else:
