@@ -129,7 +129,9 @@ def track_opd(phase, group_delay, *, wave_ref: float, window: int = 25) -> np.nd
     The phase is unwrapped in time; its whole number of fringes is the one that
     brings it closest to the group delay, both smoothed by a running median
     over ``window`` frames (the group delay is noisier than the phase but
-    unambiguous).
+    unambiguous). A constant fractional offset between the two (an
+    instrumental phase) is measured over the exposure and left in place, so it
+    cannot make the fringe count flicker.
 
     Parameters
     ----------
@@ -147,7 +149,11 @@ def track_opd(phase, group_delay, *, wave_ref: float, window: int = 25) -> np.nd
     opd_phase = -np.unwrap(np.asarray(phase, float), axis=0) * wave_ref / (2 * np.pi)
     offset = np.asarray(group_delay, float) - opd_phase
     smooth = median_filter(offset, size=(window, 1), mode="nearest")
-    return opd_phase + np.rint(smooth / wave_ref) * wave_ref
+    # a constant group-delay/phase-delay offset (instrumental phase, dispersion) must not put
+    # the rounding boundary where the data sit: centre it on the typical fractional fringe
+    typical = np.nanmean(np.exp(2j * np.pi * offset / wave_ref), axis=0)
+    frac = np.angle(typical) * wave_ref / (2 * np.pi)
+    return opd_phase + np.rint((smooth - frac) / wave_ref) * wave_ref
 
 
 def flag_ft_frames(snr, group_delay, opd, *, wave_ref: float, baselines, triangles,
@@ -186,7 +192,8 @@ def flag_ft_frames(snr, group_delay, opd, *, wave_ref: float, baselines, triangl
     flags |= np.where(widen(~(snr >= snr_min)), FLAG_LOW_SNR, 0).astype(np.uint8)
     excursion = np.abs(gd - np.nanmedian(gd, axis=0)) > max_group_delay
     flags |= np.where(widen(excursion), FLAG_GD_EXCURSION, 0).astype(np.uint8)
-    fringe = np.rint(median_filter(opd, size=(window, 1), mode="nearest") / wave_ref)
+    frac = np.angle(np.mean(np.exp(2j * np.pi * opd / wave_ref), axis=0)) * wave_ref / (2 * np.pi)
+    fringe = np.rint((median_filter(opd, size=(window, 1), mode="nearest") - frac) / wave_ref)
     usual = np.array([_mode(f) for f in fringe.T])
     change = np.zeros(fringe.shape, bool)
     change[1:] = fringe[1:] != fringe[:-1]

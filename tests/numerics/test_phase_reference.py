@@ -103,6 +103,23 @@ def test_tracking_and_flags(scene):
     assert np.all(np.abs(opd - scene["opd"])[2550:2750, with2] < 0.25 * est.wave_ref)
 
 
+def test_constant_phase_offset_does_not_cause_jumps(scene):
+    # an instrumental FT phase of 0.95 pi shifts the phase delay by almost half a fringe
+    # from the group delay: the fringe count must not flicker between two values
+    est = fringe_estimates(scene["c"] * np.exp(0.95j * np.pi), FT_WAVE,
+                           ft_coherent_var=scene["v"])
+    opd = track_opd(est.phase, est.group_delay, wave_ref=est.wave_ref)
+    flags = flag_ft_frames(est.snr, est.group_delay, opd, wave_ref=est.wave_ref,
+                           baselines=BASELINES, triangles=TRIANGLES, snr_min=4.0)
+    quiet = np.ones(scene["n"], bool)
+    quiet[960:1140] = quiet[2460:2840] = False
+    assert ((flags[quiet] & FLAG_FRINGE_JUMP) != 0).mean() < 0.01
+    # the tracked path is the true one minus the constant 0.95 pi of phase, whole fringes right
+    shift = -0.95 * np.pi * est.wave_ref / (2 * np.pi)
+    err = (opd - scene["opd"] - shift)[quiet & (flags == 0).all(1)]
+    assert np.abs(err).max() < 0.25 * est.wave_ref
+
+
 def test_closure_flag(scene):
     # a whole-fringe error on one baseline only breaks the closure of its two triangles
     opd = scene["opd"].copy()
