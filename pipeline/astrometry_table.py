@@ -80,7 +80,8 @@ def row_from_binary(attrs: dict) -> dict:
         else:
             row[name] = float(v) if v is not None else math.nan
     mjd = row["mjd"]
-    row["jyear"] = float(Time(mjd, format="mjd", scale="utc").jyear) if np.isfinite(mjd) else math.nan
+    row["jyear"] = (float(Time(mjd, format="mjd", scale="utc").jyear) if np.isfinite(mjd)
+                    else math.nan)
     return row
 
 

@@ -12,14 +12,17 @@ the best model (for the report).
 from __future__ import annotations
 
 import json
+
 import numpy as np
 
 from .errors import BadInput, FitFailed
-from .numerics.binary_fit import FLAGS, Observables, draw_correlated, fit_binary, to_jsonable
+from .numerics.binary_fit import FLAGS, BinaryFitResult, Observables, fit_binary
 from .numerics.binary_model import binary_observables
+from .numerics.correlated_draws import draw_correlated
+from .numerics.ellipse import ErrorEllipse, SepPA
 from .stage import Array
 
-__all__ = ["observables_from_product", "binary_product", "FLAG_DOC"]
+__all__ = ["observables_from_product", "binary_product", "to_jsonable", "FLAG_DOC"]
 
 FLAG_DOC = ", ".join(f"{b}={name}" for name, b in FLAGS.items())
 
@@ -109,4 +112,21 @@ def binary_product(view, instrument, *, exposure: str, search_radius_mas: float 
         wave=Array(np.asarray(obs.wave), ("wave",), "m"))
     if obs.has_phase:
         out.update(visphi=Array(obs.visphi, pb, "rad"), visphi_err=Array(obs.visphi_err, pb, "rad"))
+    return out
+
+
+def to_jsonable(result: BinaryFitResult) -> dict:
+    """Scalar fields of a result as a JSON-able dict (arrays and nested dataclasses flattened)."""
+    out = {}
+    for k, v in result.__dict__.items():
+        if isinstance(v, (SepPA, ErrorEllipse)):
+            pre = "" if isinstance(v, SepPA) else "ellipse_"
+            out.update({pre + kk: float(vv) for kk, vv in v.__dict__.items()})
+        elif isinstance(v, np.ndarray):
+            if v.shape == (2, 2):
+                out[k] = json.dumps(v.tolist())
+        elif isinstance(v, tuple):
+            out[k] = ",".join(v)
+        else:
+            out[k] = v
     return out

@@ -121,9 +121,11 @@ def _exposure_figure(view, outdir: Path, idx: int) -> str:
              f"dDec {a.get('ddec', np.nan):.4f} +- {a.get('ddec_err', np.nan):.4f} mas",
              f"corr {a.get('dra_ddec_corr', np.nan):.3f}",
              f"sep  {a.get('sep', np.nan):.4f} mas, PA {a.get('pa', np.nan):.3f} deg",
-             f"flux ratio {a.get('flux_ratio', np.nan):.4g} +- {a.get('flux_ratio_err', np.nan):.2g}",
+             f"flux ratio {a.get('flux_ratio', np.nan):.4g} "
+             f"+- {a.get('flux_ratio_err', np.nan):.2g}",
              f"chi2_red {a.get('chi2_red', np.nan):.2f}, ndata {a.get('ndata', 0)}",
-             f"errors from: {a.get('error_source', '?')} (bootstrap: {a.get('bootstrap_kind', '?')})",
+             f"errors from: {a.get('error_source', '?')} "
+             f"(bootstrap: {a.get('bootstrap_kind', '?')})",
              f"flag {a.get('flag', -1)} {a.get('flag_names', '')}"]
     ax[1, 2].text(0.0, 1.0, "\n".join(lines), va="top", family="monospace", fontsize=9)
     fig.suptitle(f"{a.get('exposure', '')}: {a.get('target', '')}")
@@ -189,7 +191,8 @@ def _qc_figure(qc: dict, binaries, outdir: Path) -> str | None:
         return None
     n = len(panels) + 1
     ncol = min(3, n)
-    fig, ax = plt.subplots(int(np.ceil(n / ncol)), ncol, figsize=(5 * ncol, 3.6 * np.ceil(n / ncol)),
+    nrow = int(np.ceil(n / ncol))
+    fig, ax = plt.subplots(nrow, ncol, figsize=(5 * ncol, 3.6 * nrow),
                            squeeze=False)
     ax = ax.ravel()
     for a_, (title, data, kind) in zip(ax, panels):
@@ -255,7 +258,8 @@ def build_report(outdir, binaries, *, table=None, qc=None, title="twinfield nigh
     meta = "" if table is None else html.escape(
         f"code {table.meta.get('CODEVER', '?')}, configuration {table.meta.get('CFGHASH', '?')}. "
         f"Flags: {table.meta.get('FLAGS', '')}. {table.meta.get('CONVENT', '')}")
-    body = "\n".join(f'<h2>{html.escape(t)}</h2>\n<img src="{html.escape(f)}" alt="{html.escape(t)}">'
+    body = "\n".join(f'<h2>{html.escape(t)}</h2>\n'
+                     f'<img src="{html.escape(f)}" alt="{html.escape(t)}">'
                      for t, f in figs)
     page = f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><title>{html.escape(title)}</title>

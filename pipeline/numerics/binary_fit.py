@@ -20,7 +20,8 @@ bootstrap realisations of the observables are supplied (``vis2_boot`` ...), else
 over spectral channels (each resample draws channels with replacement, keeping
 every baseline and triangle of a channel together; Efron & Tibshirani 1993, An
 Introduction to the Bootstrap, ch. 6). Realisations drawn from the frame-bootstrap
-covariance between channels (:func:`draw_correlated`) are labelled "covariance".
+covariance between channels (``pipeline.numerics.correlated_draws``) are labelled
+"covariance".
 The larger of the two covariances (by the trace of the position block) is
 reported; likewise for the primary's offset, and the flux-ratio error is the
 larger of the two.
@@ -48,13 +49,13 @@ from typing import Literal
 
 import numpy as np
 
-from pipeline.numerics.binary_model import (BASELINES, TRIANGLES, binary_observables,
-                                            flux_ratio_law, grid_chi2, wrap)
-from pipeline.skymodel import MAS, binary_visibility
+from pipeline.numerics.binary_model import (BASELINES, TRIANGLES, flux_ratio_law, grid_chi2,
+                                            make_residual)
 from pipeline.numerics.ellipse import ErrorEllipse, SepPA, correlation, error_ellipse, sep_pa
+from pipeline.skymodel import MAS, binary_visibility
 
 __all__ = ["FLAGS", "Observables", "BinaryFitResult", "fit_binary", "search_grid",
-           "params_to_json", "params_from_json", "to_jsonable", "draw_correlated"]
+           "params_to_json", "params_from_json"]
 
 FLAGS = {"ambiguous": 1, "field_edge": 2, "flux_ratio_zero": 4, "chi2_red": 8,
          "no_covariance": 16}
@@ -103,7 +104,8 @@ class Observables:
         if (self.visphi is None) != (self.visphi_err is None):
             raise ValueError("Observables: give both visphi and visphi_err, or neither")
         if np.shape(self.uvw)[-2:] != (nb, 3):
-            raise ValueError(f"Observables.uvw: expected (..., {nb}, 3), found {np.shape(self.uvw)}")
+            raise ValueError(f"Observables.uvw: expected (..., {nb}, 3), "
+                             f"found {np.shape(self.uvw)}")
 
     @property
     def has_phase(self) -> bool:
@@ -176,31 +178,6 @@ def _local_minima(chi2_map, n_max):
     iy, ix = np.nonzero(is_min)
     order = np.argsort(filled[iy, ix])[:n_max]
     return iy[order], ix[order]
-
-
-def _residual_factory(obs, *, fibre_fwhm_mas, diameters, vis2, t3phi, visphi, weight):
-    """Residual vector (data - model) / error over valid points; ``weight`` (n_wave,)
-    multiplies each channel's squared residual (channel bootstrap)."""
-    ok2 = np.isfinite(vis2) & np.isfinite(obs.vis2_err) & (obs.vis2_err > 0)
-    okt = np.isfinite(t3phi) & np.isfinite(obs.t3phi_err) & (obs.t3phi_err > 0)
-    okp = (np.isfinite(visphi) & np.isfinite(obs.visphi_err) & (obs.visphi_err > 0)
-           if visphi is not None else None)
-    sw = np.sqrt(weight)
-
-    def residual(params):
-        p = params.valuesdict()
-        m2, mt, mp = binary_observables(
-            obs.uvw, obs.wave, dra_mas=p["dra"], ddec_mas=p["ddec"], flux_ratio=p["flux_ratio"],
-            flux_slope=p["flux_slope"], primary_dra_mas=p["primary_dra"],
-            primary_ddec_mas=p["primary_ddec"], diameter1_mas=diameters[0],
-            diameter2_mas=diameters[1], bandwidth_m=obs.bandwidth, fibre_fwhm_mas=fibre_fwhm_mas,
-            baselines=obs.baselines, triangles=obs.triangles)
-        parts = [((vis2 - m2) / obs.vis2_err * sw)[ok2],
-                 (wrap(t3phi - mt) / obs.t3phi_err * sw)[okt]]
-        if visphi is not None:
-            parts.append((wrap(visphi - mp) / obs.visphi_err * sw)[okp])
-        return np.concatenate(parts)
-    return residual, int(ok2.sum() + okt.sum() + (okp.sum() if okp is not None else 0))
 
 
 def _primary_grid(obs, params, ch, *, step, radius, fibre_fwhm_mas):
@@ -316,13 +293,13 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
     kw = dict(radius=search_radius_mas, ratio_max=flux_ratio_max, fit_slope=fit_slope)
     rkw = dict(fibre_fwhm_mas=fibre_fwhm_mas, diameters=diameters_mas, vis2=obs.vis2,
                t3phi=obs.t3phi, weight=np.ones(nw))
-    residual, ndata = _residual_factory(obs, visphi=obs.visphi, **rkw)
+    residual, ndata = make_residual(obs, visphi=obs.visphi, **rkw)
     nfree = 3 + int(fit_slope) + 2 * int(obs.has_phase)
     if ndata <= nfree:
         raise FitFailed("binary fit", n_points=ndata, n_free=nfree)
     # Stage 1: V2 and closure phases only (blind to the primary's offset but for the
     # fibre and smearing envelopes), primary at the phase centre.
-    res_amp, _ = _residual_factory(obs, visphi=None, **rkw)
+    res_amp, _ = make_residual(obs, visphi=None, **rkw)
     fits = [_refine(res_amp, _params(gx[x], gy[y], ratio_map[y, x], has_phase=False, **kw))
             for y, x in zip(iy, ix)]
     if obs.has_phase:
@@ -419,7 +396,7 @@ def _bootstrap(obs, *, residual_kw, start, n_boot, mode, seed, names):
     if obs.has_boot and mode == "auto":
         kind = obs.boot_kind
         for b in range(min(n_boot, len(obs.vis2_boot))):
-            res, _ = _residual_factory(
+            res, _ = make_residual(
                 obs, vis2=obs.vis2_boot[b], t3phi=obs.t3phi_boot[b],
                 visphi=None if obs.visphi is None else (
                     obs.visphi_boot[b] if obs.visphi_boot is not None else obs.visphi),
@@ -430,45 +407,10 @@ def _bootstrap(obs, *, residual_kw, start, n_boot, mode, seed, names):
         rng = np.random.default_rng(seed)
         for _ in range(n_boot):
             weight = np.bincount(rng.integers(0, nw, nw), minlength=nw).astype(float)
-            res, _ = _residual_factory(obs, vis2=obs.vis2, t3phi=obs.t3phi, visphi=obs.visphi,
+            res, _ = make_residual(obs, vis2=obs.vis2, t3phi=obs.t3phi, visphi=obs.visphi,
                                        weight=weight, **residual_kw)
             out.append(_refine(res, start.copy()).params)
     return kind, np.array([[p[n].value for n in names] for p in out])
-
-
-def draw_correlated(value, err, cov=None, *, n: int, seed: int = 0):
-    """Gaussian realisations of observables about ``value``.
-
-    Parameters
-    ----------
-    value, err : ndarray, shape (..., n_wave)
-    cov : ndarray, shape (..., n_wave, n_wave), or None (independent channels, ``err``)
-        Covariance between channels (e.g. from a bootstrap over frames).
-    n : int, number of realisations
-    seed : int
-
-    Returns
-    -------
-    draws : ndarray, shape (n, ..., n_wave); NaN where ``value`` or ``err`` is NaN
-
-    Notes
-    -----
-    Cholesky factor of each covariance block after clipping negative eigenvalues
-    (a bootstrap covariance is only positive semi-definite), NaN rows treated as
-    independent with the diagonal error.
-    """
-    rng = np.random.default_rng(seed)
-    value, err = np.asarray(value, float), np.asarray(err, float)
-    z = rng.standard_normal((n,) + value.shape)
-    if cov is None:
-        return value + z * err
-    c = np.asarray(cov, float)
-    ok = np.isfinite(c).all(-1) & np.isfinite(c).all(-2)
-    c = np.where(ok[..., :, None] & ok[..., None, :], c, 0.0)
-    c = c + np.eye(c.shape[-1]) * np.where(ok, 0.0, np.nan_to_num(err) ** 2)[..., None]
-    vals, vecs = np.linalg.eigh(0.5 * (c + np.swapaxes(c, -1, -2)))
-    root = vecs * np.sqrt(np.clip(vals, 0, None))[..., None, :]
-    return value + np.einsum("...ij,n...j->n...i", root, z)
 
 
 def params_to_json(params) -> str:
@@ -488,21 +430,4 @@ def params_from_json(text: str):
                 min=-np.inf if d["min"] is None else d["min"],
                 max=np.inf if d["max"] is None else d["max"])
         out[name].stderr = d["stderr"]
-    return out
-
-
-def to_jsonable(result: BinaryFitResult) -> dict:
-    """Scalar fields of a result as a JSON-able dict (arrays and nested dataclasses flattened)."""
-    out = {}
-    for k, v in result.__dict__.items():
-        if isinstance(v, (SepPA, ErrorEllipse)):
-            pre = "" if isinstance(v, SepPA) else "ellipse_"
-            out.update({pre + kk: float(vv) for kk, vv in v.__dict__.items()})
-        elif isinstance(v, np.ndarray):
-            if v.shape == (2, 2):
-                out[k] = json.dumps(v.tolist())
-        elif isinstance(v, tuple):
-            out[k] = ",".join(v)
-        else:
-            out[k] = v
     return out

@@ -23,7 +23,7 @@ import numpy as np
 from pipeline.skymodel import MAS, binary_visibility
 
 __all__ = ["BASELINES", "TRIANGLES", "REF_WAVE_M", "flux_ratio_law", "binary_observables",
-           "grid_chi2", "wrap"]
+           "grid_chi2", "make_residual", "wrap"]
 
 BASELINES = ((0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3))
 TRIANGLES = ((0, 1, 2), (0, 1, 3), (0, 2, 3), (1, 2, 3))
@@ -163,6 +163,39 @@ def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_
         ct = (2 * Wt - 2 * cos_res).sum((-1, -2))
         out[s:s + chunk] = c2 + ct
     return out
+
+
+def make_residual(obs, *, fibre_fwhm_mas, diameters, vis2, t3phi, visphi, weight):
+    """Residual function of a least-squares fit, and its number of valid points.
+
+    ``obs`` supplies errors, (u, v, w), wavelengths, bandwidths, baselines and
+    triangles (a ``binary_fit.Observables``); ``vis2``, ``t3phi``, ``visphi`` (None:
+    not fitted) are the data (possibly a bootstrap realisation); ``weight`` (n_wave,)
+    multiplies each channel's squared residual (channel bootstrap). The returned
+    function maps parameters (anything with ``valuesdict()``: dra, ddec, flux_ratio,
+    flux_slope, primary_dra, primary_ddec, mas) to (data - model) / error over the
+    valid points, phases wrapped to (-pi, pi].
+    """
+    ok2 = np.isfinite(vis2) & np.isfinite(obs.vis2_err) & (obs.vis2_err > 0)
+    okt = np.isfinite(t3phi) & np.isfinite(obs.t3phi_err) & (obs.t3phi_err > 0)
+    okp = (np.isfinite(visphi) & np.isfinite(obs.visphi_err) & (obs.visphi_err > 0)
+           if visphi is not None else None)
+    sw = np.sqrt(weight)
+
+    def residual(params):
+        p = params.valuesdict()
+        m2, mt, mp = binary_observables(
+            obs.uvw, obs.wave, dra_mas=p["dra"], ddec_mas=p["ddec"], flux_ratio=p["flux_ratio"],
+            flux_slope=p["flux_slope"], primary_dra_mas=p["primary_dra"],
+            primary_ddec_mas=p["primary_ddec"], diameter1_mas=diameters[0],
+            diameter2_mas=diameters[1], bandwidth_m=obs.bandwidth, fibre_fwhm_mas=fibre_fwhm_mas,
+            baselines=obs.baselines, triangles=obs.triangles)
+        parts = [((vis2 - m2) / obs.vis2_err * sw)[ok2],
+                 (wrap(t3phi - mt) / obs.t3phi_err * sw)[okt]]
+        if visphi is not None:
+            parts.append((wrap(visphi - mp) / obs.visphi_err * sw)[okp])
+        return np.concatenate(parts)
+    return residual, int(ok2.sum() + okt.sum() + (okp.sum() if okp is not None else 0))
 
 
 def _weights(value, err):

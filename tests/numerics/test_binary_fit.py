@@ -12,8 +12,9 @@ from scipy.stats import chi2 as chi2_dist
 
 from pipeline.errors import FitFailed
 from pipeline.geometry import uvw_from_enu
-from pipeline.numerics.binary_fit import (FLAGS, Observables, draw_correlated, fit_binary,
-                                          params_from_json, search_grid)
+from pipeline.numerics.binary_fit import (FLAGS, Observables, fit_binary, params_from_json,
+                                          search_grid)
+from pipeline.numerics.correlated_draws import draw_correlated
 from pipeline.numerics.binary_model import binary_observables, grid_chi2
 from pipeline.skymodel import MAS, binary_visibility
 
