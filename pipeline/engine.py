@@ -195,12 +195,13 @@ def _execute(spec: dict, upstream: dict) -> dict:
     workdir = Path(spec["workdir"])
     t0 = time.perf_counter()
     prov = {"stage": stage_name, "label": unit.label, "key": key}
-    failed_up = [f"{r['stage']}/{r['label']}" for r in upstream.values() if r["state"] == "failed"]
+    failed_up = [r for r in upstream.values() if r["state"] == "failed"]
     try:
         if spec["error"]:
             raise _UnitError(spec["error"])
         if failed_up:
-            raise _UnitError(f"upstream {', '.join(failed_up)} failed")
+            names = ", ".join(dict.fromkeys(f"{r['stage']}/{r['label']}" for r in failed_up))
+            raise _UnitError(f"upstream {names} failed ({failed_up[0]['root']})")
         stage = spec["stage_obj"]
         from .instrument import load_instrument
         from .rawio import RawExposure
@@ -242,8 +243,9 @@ def _execute(spec: dict, upstream: dict) -> dict:
                           {**prov, "traceback": tb})
         except OSError:
             pass
+        root = failed_up[0]["root"] if failed_up and not spec["error"] else message
         return {**prov, "state": "failed", "path": "", "message": message, "traceback": tb,
-                "seconds": time.perf_counter() - t0}
+                "root": root, "seconds": time.perf_counter() - t0}
 
 
 class _UnitError(Exception):

@@ -94,7 +94,9 @@ def test_bad_file_fails_its_branch_only(night, tmp_path, rng):
     assert set(failed) == {("dark", "sci-low-joint-dit3"), ("consumer", "sci-low-joint-dit3")}
     assert "dark_3.fits" in failed[("dark", "sci-low-joint-dit3")]
     assert "SCI_PIX has 4 frames, NFRAME says 6" in failed[("dark", "sci-low-joint-dit3")]
-    assert failed[("consumer", "sci-low-joint-dit3")] == "upstream dark/sci-low-joint-dit3 failed"
+    # Dependents fail too, and their message names the root cause's file.
+    assert failed[("consumer", "sci-low-joint-dit3")] == (
+        "upstream dark/sci-low-joint-dit3 failed (" + failed[("dark", "sci-low-joint-dit3")] + ")")
     assert [Path(p).name for p, _ in run.bad_files] == ["sci1.fits"]
     assert run.exit_code == 1
     assert set(run.computed) == ALL           # the rest of the night finished
