@@ -36,11 +36,3 @@ def detected(ch: Channel, flux_i, flux_j, coherent) -> np.ndarray:
     i_k = ti * flux_i + tj * flux_j + fringe
     return np.einsum("ftps,tps->ftp", i_k, ch.fine_weight)
 
-
-def detected_polar(ch: Channel, flux_i, flux_j, modulus, phase) -> np.ndarray:
-    """As :func:`detected`, with the coherent flux given as modulus and phase (rad):
-    Re[C e^{i theta}] = |C| cos(arg C + theta). Cheaper for long fringe-tracker series."""
-    ti, tj = ch.t_fine[:, 0], ch.t_fine[:, 1]
-    amp = 2 * np.sqrt(ti * tj) * ch.c_fine
-    i_k = ti * flux_i + tj * flux_j + amp * modulus * np.cos(phase + ch.theta_fine)
-    return np.einsum("ftps,tps->ftp", i_k, ch.fine_weight)

@@ -21,7 +21,7 @@ from astropy.time import Time, TimeDelta
 from ..geometry import hour_angle_rad, uvw_from_enu
 from ..instrument import Instrument, load_instrument
 from ..skymodel import MAS, fibre_coupling
-from .combine import detected, detected_polar
+from .combine import detected
 from .detector import make_detector, read_out, trace_profiles
 from .scenario import Exposure, Scenario, load_scenario
 from .sky import Component, coupled_sky, field_components, planck_photon_shape, star_photon_density
@@ -324,21 +324,29 @@ def _simulate_exposure(w: _World, p: Planned, night: Path, seed: int) -> dict:
                 np.sqrt(rho_f[:, bl[:, 0]] * rho_f[:, bl[:, 1]]), 1e-12))
             return fi, fj, coh
 
-        ft_coh_mod = np.abs(ft_coh_rel) * ft_star
-        ft_coh_arg = np.angle(ft_coh_rel) if ft_comps else 0.0
+        # fringe-tracker expected counts: the incoherent part is linear in the injection,
+        # so it is summed over each pixel's bandpass once; only the fringe term is
+        # evaluated per frame on the bandpass samples (float32)
+        ti, tj = ft.t_fine[:, 0], ft.t_fine[:, 1]
+        src = ft_star * ft_flux_rel * period
+        a_i = (ft.fine_weight * ti * src).sum(-1)                                # (trace, pix)
+        a_j = (ft.fine_weight * tj * src).sum(-1)
+        a_bg = (ft.fine_weight * (ti + tj) * ftbg * period).sum(-1)
+        kern = (ft.fine_weight * 2 * np.sqrt(ti * tj) * ft.c_fine * np.abs(ft_coh_rel)
+                * ft_star * period).astype(np.float32)                          # (trace, pix, sub)
+        offs = (ft.theta_fine + (np.angle(ft_coh_rel) if ft_comps else 0.0)).astype(np.float32)
         sigma_ft = (1.0 / ftwave).astype(np.float32)
+        g2 = (-2 * np.pi ** 2 * sigma_ft ** 2).astype(np.float32)
 
-        def ft_light(n0, n1):
+        def ft_expected(n0, n1):
             rh = rho_ms[n0:n1]
-            mean, var = dr_ms[n0:n1][:, ftbl], dv_ms[n0:n1][:, ftbl]           # (n, 24)
-            phase = (-2 * np.pi * mean[:, :, None, None].astype(np.float32) * sigma_ft
-                     + ft_coh_arg)
-            mod = (np.sqrt(rh[:, ftpair[:, 0]] * rh[:, ftpair[:, 1]])[:, :, None, None]
-                   * np.exp(-2 * np.pi ** 2 * var[:, :, None, None] * sigma_ft ** 2)
-                   * ft_coh_mod * period)
-            fi = (rh[:, ftpair[:, 0]][:, :, None, None] * ft_star * ft_flux_rel + ftbg) * period
-            fj = (rh[:, ftpair[:, 1]][:, :, None, None] * ft_star * ft_flux_rel + ftbg) * period
-            return fi, fj, (mod, phase)
+            ri, rj = rh[:, ftpair[:, 0]], rh[:, ftpair[:, 1]]                    # (n, trace)
+            mean = dr_ms[n0:n1][:, ftbl].astype(np.float32)[:, :, None, None]
+            var = dv_ms[n0:n1][:, ftbl].astype(np.float32)[:, :, None, None]
+            fringe = (kern * np.exp(var * g2)
+                      * np.cos(np.float32(-2 * np.pi) * mean * sigma_ft + offs)).sum(-1)
+            return (ri[:, :, None] * a_i + rj[:, :, None] * a_j + a_bg
+                    + np.sqrt(ri * rj)[:, :, None] * fringe)
 
         truth["hour_angle_start_rad"] = float(h0)
         truth["uvw_mid_m"] = uvw_from_enu(inst.baseline_enu_m, h0 + SIDEREAL_RATE * duration / 2,
@@ -378,17 +386,17 @@ def _simulate_exposure(w: _World, p: Planned, night: Path, seed: int) -> dict:
         def sci_light(f0, f1):
             return lamp_light(t_mid[f0:f1], e.dit, wave, lamp_sc, pair)
 
-        def ft_light(n0, n1):
-            return lamp_light(ft_time[n0:n1] - period / 2, period, ftwave, lamp_ft, ftpair)
+        def ft_expected(n0, n1):
+            fi, fj, coh = lamp_light(ft_time[n0:n1] - period / 2, period, ftwave, lamp_ft, ftpair)
+            return detected(ft, fi, fj, coh)
 
         if e.kind == "dark":
             def sci_light(f0, f1):
                 z = np.zeros((1, 1, 1, 1))
                 return z, z, z
 
-            def ft_light(n0, n1):
-                z = np.zeros((1, 1, 1, 1))
-                return z, z, z
+            def ft_expected(n0, n1):
+                return np.zeros((1,) + ft.eff_wave.shape)
 
     # ---- science cube, chunk by chunk
     n_y = inst.detectors["science"].n_y
@@ -411,9 +419,7 @@ def _simulate_exposure(w: _World, p: Planned, night: Path, seed: int) -> dict:
     step = 2000
     for n0 in range(0, n_ft, step):
         n1 = min(n_ft, n0 + step)
-        fi, fj, coh = ft_light(n0, n1)
-        counts = (detected_polar(ft, fi, fj, *coh) if isinstance(coh, tuple)
-                  else detected(ft, fi, fj, coh))
+        counts = ft_expected(n0, n1)
         counts = np.broadcast_to(counts, (n1 - n0,) + counts.shape[1:])
         ft_counts[n0:n1] = read_out(w.ft_det, counts, period, rng)[0]
 
