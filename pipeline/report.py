@@ -170,18 +170,21 @@ def _qc_figure(qc: dict, binaries, outdir: Path) -> str | None:
     panels = []
     for v in qc.get("flat", []):
         if "profile_sigma" in v:
-            panels.append(("trace cross-profile sigma [px]", v["profile_sigma"], "trace"))
+            panels.append((f"trace cross-profile sigma [px] ({v.attrs.get('label', '')})",
+                           v["profile_sigma"], "trace"))
     for v in qc.get("wavecal", []):
-        key = next((k for k in ("law_residual", "wave_residual") if k in v), None)
-        if key:
-            panels.append(("wavelength-law residuals [nm]", np.asarray(v[key]) * 1e9, "trace"))
+        if "wave_measured" in v and "wave_pixel" in v:
+            res = (np.asarray(v["wave_measured"], float) - np.asarray(v["wave_pixel"], float))
+            panels.append((f"wavelength-law residuals [nm] ({v.attrs.get('label', '')})",
+                           res * 1e9, "trace"))
         elif "wave_pixel" in v:
             w = np.asarray(v["wave_pixel"], float)
             panels.append(("trace wavelength minus median of traces [nm]",
                            (w - np.nanmedian(w, axis=0)) * 1e9, "trace"))
     for v in qc.get("combiner", []):
         if "condition" in v:
-            panels.append(("combiner condition number", np.asarray(v["condition"]), "pol"))
+            panels.append((f"combiner condition number ({v.attrs.get('label', '')})",
+                           np.asarray(v["condition"]), "pol"))
     rej = [(str(v.attrs.get("label", "")), 1 - np.asarray(v["frame_valid"], bool).mean())
            for v in qc.get("reference", []) if "frame_valid" in v]
     if not rej:      # else the science exposures' own record (calibrate product attribute)
