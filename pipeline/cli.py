@@ -134,6 +134,10 @@ def main(argv=None) -> int:
         kind = "error" if isinstance(exc, TwinfieldError) else f"internal error ({type(exc).__name__})"
         print(f"twinfield: {kind}: {exc}", file=sys.stderr)
         return code
+    except BrokenPipeError:                 # output piped into `head` and the like
+        import os
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_OK
     except KeyboardInterrupt:
         print("twinfield: interrupted", file=sys.stderr)
         return 130

@@ -259,3 +259,16 @@ def test_distributed_scheduler_by_address(night, tmp_path):
         run = reduce(night, tmp_path / "work", stages=[inventory.STAGE, dark.STAGE],
                      scheduler=cluster.scheduler_address, progress=False)
     assert run.exit_code == 0 and len(run.computed) == 4
+
+
+@pytest.mark.slow
+def test_tiny_night_whole_graph(tiny_night, tmp_path):
+    """Every registered stage on the tiny simulated night: the night reduces without a
+    failure, and a second reduce recomputes nothing."""
+    import recipes
+    work = tmp_path / "work"
+    first = reduce(tiny_night, work, progress=False)
+    assert first.exit_code == 0, first.text()
+    assert len(first.computed) >= len(recipes.STAGES)
+    second = reduce(tiny_night, work, progress=False)
+    assert second.computed == [] and len(second.reused) == len(first.computed)
