@@ -196,6 +196,7 @@ def calibrate_product(science, calibrators, *, science_path: str = "", method: s
     tf_covs = [_outer_div(c["vis2_cov"], e[1]) + _outer(t * e[2] / e[1])
                for c, e, t in zip(cals, exp, tf2)]
     tf_cov = (1 - a) ** 2 * tf_covs[lo] + a ** 2 * tf_covs[hi]
+    tf_cov = tf_cov + _outer(scatter_floor * (tf2[hi] - tf2[lo]))     # systematic term
     v2cov = _outer_div(science["vis2_cov"], T2) + _outer(v2) * _outer_div(tf_cov, T2)
     pcov = (science["visphi_cov"] + (1 - a) ** 2 * cals[lo]["visphi_cov"]
             + a ** 2 * cals[hi]["visphi_cov"])
