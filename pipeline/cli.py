@@ -123,6 +123,10 @@ def main(argv=None) -> int:
     try:
         return {"simulate": _cmd_simulate, "plan": _cmd_plan, "reduce": _cmd_reduce,
                 "status": _cmd_status, "rerun": _cmd_rerun}[args.command](args)
+    except BrokenPipeError:                 # output piped into `head` and the like
+        import os
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_OK
     except Exception as exc:
         if args.debug:
             import traceback
@@ -134,10 +138,6 @@ def main(argv=None) -> int:
         kind = "error" if isinstance(exc, TwinfieldError) else f"internal error ({type(exc).__name__})"
         print(f"twinfield: {kind}: {exc}", file=sys.stderr)
         return code
-    except BrokenPipeError:                 # output piped into `head` and the like
-        import os
-        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
-        return EXIT_OK
     except KeyboardInterrupt:
         print("twinfield: interrupted", file=sys.stderr)
         return 130
