@@ -43,3 +43,8 @@ bench: $(STAMP)
 
 clean:
 	rm -rf work build .pytest_cache
+
+# Monte-Carlo check of the astrometric errors (pulls over many simulated nights); not part of `make test`.
+.PHONY: validate
+validate: $(STAMP)
+	$(PY) -m pipeline.validate --seeds 30 --scenario tiny --out build

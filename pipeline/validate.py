@@ -1,0 +1,110 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Monte-Carlo validation of the astrometric errors: ``make validate``.
+
+Simulates a small scenario under many seeds, reduces each night with every stage,
+and compares each science exposure's ``binary`` product with the simulator's truth
+file. Reports the mean and width (standard deviation) of the pulls
+(recovered - true) / error of dRA, dDec and the flux ratio, the fraction of
+exposures inside their 3-sigma error ellipse (Mahalanobis d^2 < 11.8 for 2 degrees
+of freedom) and the median precision, into ``build/validate.json``.
+
+Honest errors give pulls of mean 0 and width 1; with N pulls the width is known to
+about 1/sqrt(2N) (0.09 for 60 pulls), hence the acceptance band 0.75-1.33 and a mean
+within +-0.25.
+
+Usage: ``python -m pipeline.validate [--seeds 30] [--scenario tiny] [--out build]``
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import shutil
+import sys
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["pulls_of_night", "main"]
+
+
+def pulls_of_night(night: Path, work: Path) -> list[dict]:
+    """Per science exposure of a reduced night: pulls, Mahalanobis d^2, errors, flags."""
+    from .store import ProductView
+    truth = json.loads((night / "truth.json").read_text())
+    out = []
+    for path in sorted((work / "binary").glob("*.h5")):
+        with ProductView(path) as view:
+            a = view.attrs
+        t = truth["files"].get(a["exposure"])
+        if t is None or t.get("companion_dra_mas") is None:
+            continue
+        d = np.array([a["dra"] - t["companion_dra_mas"], a["ddec"] - t["companion_ddec_mas"]])
+        cov = np.array(json.loads(a["cov"]))
+        out.append({"exposure": a["exposure"], "flag": int(a["flag"]),
+                    "pull_dra": float(d[0] / a["dra_err"]),
+                    "pull_ddec": float(d[1] / a["ddec_err"]),
+                    "pull_flux_ratio": float((a["flux_ratio"] - t["flux_ratio"])
+                                             / a["flux_ratio_err"]),
+                    "d2": float(d @ np.linalg.solve(cov, d)),
+                    "dra_err_mas": float(a["dra_err"]), "ddec_err_mas": float(a["ddec_err"])})
+    return out
+
+
+def _stages():
+    import importlib
+    import recipes
+    names = [s.name for s in recipes.STAGES]
+    extra = [importlib.import_module(f"recipes.{n}").STAGE
+             for n in ("average", "calibrate", "binary", "tables", "report") if n not in names]
+    return list(recipes.STAGES) + extra
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(prog="python -m pipeline.validate",
+                                 description=__doc__.split("\n")[0])
+    ap.add_argument("--seeds", type=int, default=30)
+    ap.add_argument("--first-seed", type=int, default=100)
+    ap.add_argument("--scenario", default="tiny")
+    ap.add_argument("--out", default="build")
+    args = ap.parse_args(argv)
+    from .engine import reduce
+    from .simulate import simulate_night
+    rows, failures = [], []
+    tmp = Path(tempfile.mkdtemp(prefix="twinfield-validate-"))
+    try:
+        for seed in range(args.first_seed, args.first_seed + args.seeds):
+            night, work = tmp / f"night{seed}", tmp / f"work{seed}"
+            simulate_night(night, scenario=args.scenario, seed=seed)
+            summary = reduce(night, work, stages=_stages(), progress=False)
+            failures += [f"seed {seed}: {f}" for f in summary.failed]
+            rows += [{"seed": seed, **r} for r in pulls_of_night(night, work)]
+            shutil.rmtree(night), shutil.rmtree(work)
+            print(f"seed {seed}: {len(rows)} exposures so far", file=sys.stderr)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    report = {"scenario": args.scenario, "n_seeds": args.seeds, "n_exposures": len(rows),
+              "failures": failures[:20], "n_failures": len(failures)}
+    for key in ("pull_dra", "pull_ddec", "pull_flux_ratio"):
+        v = np.array([r[key] for r in rows])
+        report[key] = {"mean": float(np.mean(v)) if v.size else None,
+                       "width": float(np.std(v)) if v.size else None}
+    if rows:
+        report["inside_3sigma_ellipse"] = float(np.mean([r["d2"] < 11.8 for r in rows]))
+        report["median_error_uas"] = float(np.median(
+            [np.hypot(r["dra_err_mas"], r["ddec_err_mas"]) for r in rows]) * 1e3)
+        report["flagged_fraction"] = float(np.mean([r["flag"] != 0 for r in rows]))
+    ok = bool(rows) and all(report[k]["width"] is not None and 0.75 <= report[k]["width"] <= 1.33
+                            and abs(report[k]["mean"]) <= 0.25
+                            for k in ("pull_dra", "pull_ddec", "pull_flux_ratio"))
+    report["pass"] = ok
+    Path(args.out).mkdir(parents=True, exist_ok=True)
+    (Path(args.out) / "validate.json").write_text(json.dumps({"summary": report, "rows": rows},
+                                                             indent=1))
+    print(json.dumps(report, indent=1))
+    return 0 if ok else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())
