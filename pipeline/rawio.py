@@ -253,6 +253,9 @@ class RawExposure:
         if shape[2] != n_x:
             raise BadInput(self.path, f"SCI_PIX has {shape[2]} columns, set-up {self.setup!r} "
                                       f"reads {n_x}")
+        n_y = getattr(self.instrument.detectors.get("science"), "n_y", 0)
+        if n_y and shape[1] != n_y:
+            raise BadInput(self.path, f"SCI_PIX has {shape[1]} rows, the detector has {n_y}")
         return _MemmapBlock(self.path, loc, np.dtype(">i2"), shape, shape,
                             zero=hdr.get("BZERO", 0.0), scale=hdr.get("BSCALE", 1.0))
 
@@ -300,9 +303,11 @@ class RawExposure:
 
         numpy when ``rows_per_chunk`` is None, else a dask array chunked by frames."""
         counts = self._column("FT_PIX", "COUNTS", dask_rows=rows_per_chunk)
-        if counts.ndim != 3 or counts.shape[1] != 24:
-            raise BadInput(self.path, f"FT_PIX COUNTS should be (frame, 24, n_wave), found "
-                                      f"{counts.shape}")
+        n_out = self.instrument.combiner.n_output
+        n_wave = self.instrument.fringe_tracker.n_wave
+        if counts.ndim != 3 or counts.shape[1:] != (n_out, n_wave):
+            raise BadInput(self.path, f"FT_PIX COUNTS should be (frame, {n_out}, {n_wave}), "
+                                      f"found {counts.shape}")
         return counts
 
     def ft_time(self) -> np.ndarray:
