@@ -94,6 +94,18 @@ def test_binary_product_recovers_truth(night):
         assert v["chi2_map"].shape == (v["grid_ddec"].size, v["grid_dra"].size)
 
 
+def test_bad_calibrated_product_names_the_file(tmp_path, instrument, rng):
+    from pipeline.errors import BadInput
+    d = _calibrated(instrument, rng, 0.0, 61010.0)
+    del d["t3phi"]
+    path = write_product(tmp_path / "calibrate" / "broken.k.h5", d, {"key": "k"})
+    unit = Unit(label="broken", raw=("/night/broken.fits",),
+                needs={"calibrated": ("calibrate", "broken")})
+    with pytest.raises(BadInput, match=r"broken\.k\.h5.*t3phi"):
+        binary.run(Inputs(unit=unit, raw=[], products={"calibrated": ProductView(path)},
+                          instrument=instrument, workdir=tmp_path), binary.BinaryParams())
+
+
 def test_tables_written_and_read_back(night, instrument):
     work, views, _ = night
     unit = Unit(label="night", needs={f"exp{k}": ("binary", "x") for k in range(3)})
