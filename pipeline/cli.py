@@ -103,10 +103,14 @@ def _cmd_status(args) -> int:
     if args.json:
         print(json.dumps(rows, indent=1))
         return EXIT_OK
+    from .store import read_failure
     counts = {}
     for r in rows:
         counts[r["state"]] = counts.get(r["state"], 0) + 1
         print(f"{r['state']:<8s} {r['stage']:<10s} {r['name']:<40s} {r['key'][:12]}")
+        if r["state"] == "failed" and r["key"]:
+            why = read_failure(args.workdir, r["stage"], r["name"], r["key"])
+            print(f"         {why}")
     print(", ".join(f"{n} {s}" for s, n in sorted(counts.items())))
     return EXIT_OK
 

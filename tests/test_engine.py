@@ -2,6 +2,7 @@
 """The engine on small nights: reuse, staleness, rerun, failure isolation, locking and
 recovery from a killed run."""
 
+import dataclasses
 import json
 import os
 import signal
@@ -272,3 +273,33 @@ def test_tiny_night_whole_graph(tiny_night, tmp_path):
     assert len(first.computed) >= len(recipes.STAGES)
     second = reduce(tiny_night, work, progress=False)
     assert second.computed == [] and len(second.reused) == len(first.computed)
+
+
+def test_nothing_to_do_is_a_recorded_skip(night, tmp_path):
+    from dataclasses import replace as dc_replace
+
+    from pipeline.errors import NothingToDo
+
+    def run(inputs, params):
+        raise NothingToDo("no split-polarisation frames tonight")
+    skipper = dc_replace(CONSUMER, name="skipper", run=run)
+    summary = reduce(night, tmp_path / "w", stages=[inventory.STAGE, dark.STAGE, skipper],
+                     progress=False)
+    assert summary.exit_code == 0
+    path = next((tmp_path / "w" / "skipper").glob("*.h5"))
+    assert ProductView(path).attrs["skipped"] == "no split-polarisation frames tonight"
+
+
+def test_inventory_product_and_provenance(night, tmp_path):
+    work = tmp_path / "w"
+    reduce(night, work, stages=[inventory.STAGE, dark.STAGE], progress=False)
+    plan = build_plan(night, work, stages=[inventory.STAGE, dark.STAGE])
+    files = ProductView(plan.units[("inventory", "night")].path)["files"]
+    assert sorted(files["path"]) == sorted(r.path for r in plan.inventory.records)
+    pu = plan.units[("dark", "sci-low-joint-dit1")]
+    attrs = ProductView(pu.path).attrs
+    import pipeline
+    assert attrs["stage"] == "dark" and attrs["key"] == pu.key and attrs["version"] == "1"
+    assert attrs["code_version"] == pipeline.__version__ and attrs["created"].endswith("Z")
+    assert json.loads(attrs["raw_files"]) == [str(night / "dark_1.fits")]
+    assert json.loads(attrs["params"]) == dataclasses.asdict(dark.DarkParams())
