@@ -74,6 +74,7 @@ class Plan:
     params: dict
     stages: list
     units: dict = field(default_factory=dict)     # (stage, label) -> PlannedUnit, graph order
+    stage_errors: dict = field(default_factory=dict)  # stage -> why its plan() failed
 
     def state(self, pu: PlannedUnit) -> str:
         """current | failed | stale | missing."""
@@ -149,11 +150,13 @@ def build_plan(night_dir, workdir, *, config=None, stages=None) -> Plan:
             upstream.setdefault(sname, []).append(pu.unit)
         try:
             units = list(stage.plan(inventory, params[stage.name], upstream) or [])
-        except TwinfieldError:
+        except ConfigError:
             raise
-        except Exception as exc:
-            raise ConfigError(f"recipes/{stage.name}.py",
-                              f"plan() failed: {type(exc).__name__}: {exc}") from exc
+        except Exception as exc:      # the stage fails; its dependents fail with it
+            plan.stage_errors[stage.name] = (str(exc) if isinstance(exc, TwinfieldError)
+                                             else f"{type(exc).__name__}: {exc}")
+            log.error("plan of stage %s failed: %s", stage.name, plan.stage_errors[stage.name])
+            units = []
         for unit in units:
             error, raw_ids = None, []
             for p in unit.raw:
@@ -385,6 +388,7 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
                                           f"inventory: {problems[0][0]}: {problems[0][1]}")
             forced = plan.dependents({uid for uid in plan.units if uid[0] in force})
             summary = RunSummary(bad_files=list(plan.inventory.bad))
+            summary.failed += [(name, "(plan)", msg) for name, msg in plan.stage_errors.items()]
             values, tasks = {}, []
             for uid, pu in plan.units.items():
                 if uid not in forced and pu.error is None and is_complete(pu.path):
@@ -442,6 +446,8 @@ def status(workdir, *, stages=None) -> list[dict]:
                       stages=stages)
     rows = [{"stage": "inventory", "name": Path(p).name, "key": "", "state": "failed",
              "path": p} for p, _ in plan.inventory.bad]
+    rows += [{"stage": name, "name": "(plan)", "key": "", "state": "failed", "path": ""}
+             for name in plan.stage_errors]
     for pu in plan.units.values():
         rows.append({"stage": pu.stage, "name": pu.unit.label, "key": pu.key,
                      "state": plan.state(pu), "path": str(pu.path)})
@@ -461,6 +467,8 @@ def plan_report(plan: Plan) -> str:
     for stage in plan.stages:
         units = by_stage.get(stage.name, [])
         lines.append(f"  {stage.name:<10s} {len(units):4d} unit(s)  {stage.doc}")
+        if stage.name in plan.stage_errors:
+            lines.append(f"      PLAN FAILED: {plan.stage_errors[stage.name]}")
         for pu in units:
             if pu.error:
                 lines.append(f"      {pu.unit.label}: CANNOT RUN: {pu.error}")

@@ -303,3 +303,15 @@ def test_inventory_product_and_provenance(night, tmp_path):
     assert attrs["code_version"] == pipeline.__version__ and attrs["created"].endswith("Z")
     assert json.loads(attrs["raw_files"]) == [str(night / "dark_1.fits")]
     assert json.loads(attrs["params"]) == dataclasses.asdict(dark.DarkParams())
+
+
+def test_a_failing_plan_fails_its_stage_only(night, tmp_path):
+    from dataclasses import replace as dc_replace
+
+    def plan(inv, params, upstream):
+        raise KeyError("no such set-up")
+    broken = dc_replace(CONSUMER, name="broken", plan=plan)
+    summary = reduce(night, tmp_path / "w", stages=[inventory.STAGE, dark.STAGE, broken],
+                     progress=False)
+    assert summary.failed == [("broken", "(plan)", "KeyError: 'no such set-up'")]
+    assert set(summary.computed) == {("inventory", "night")} | DARKS and summary.exit_code == 1
