@@ -156,18 +156,20 @@ def weighted_pinv(v2pm, *, weights=None):
 
     Returns
     -------
-    p2vm : ndarray, shape (..., 16, output)
+    p2vm : ndarray, shape (..., 16, output) -- NaN where the V2PM or weights have NaNs
 
     References
     ----------
     Tatulli, E. et al. 2007, A&A 464, 29 (the visibility-to-pixel matrix method).
     """
     m = np.asarray(v2pm, float)
-    if weights is None:
-        return np.linalg.pinv(m)
-    w = np.sqrt(np.asarray(weights, float))[..., :, None]
+    w = np.ones(m.shape[:-1]) if weights is None else np.asarray(weights, float)
+    w = np.sqrt(np.broadcast_to(w, m.shape[:-1]))[..., :, None]
+    bad = ~(np.isfinite(m).all(axis=(-1, -2)) & np.isfinite(w).all(axis=(-1, -2)))
+    wm = np.where(bad[..., None, None], 0.0, w * m)
     # pinv of the whitened matrix sqrt(W) M, then re-apply sqrt(W): (M^T W M)^-1 M^T W
-    return np.linalg.pinv(w * m) * np.swapaxes(w, -1, -2)
+    p = np.linalg.pinv(wm) * np.swapaxes(np.where(bad[..., None, None], 0.0, w), -1, -2)
+    return np.where(bad[..., None, None], np.nan, p)
 
 
 def condition_number(v2pm):

@@ -154,7 +154,7 @@ def optimal_extract(frames, profiles, *, read_noise, valid=None, clip: float = 6
     return Extracted(flux=flux, variance=ivar_diag, valid=good_f, n_rejected=n_rej)
 
 
-def resample_to_grid(spectra, variance, wave_pixel, wave_grid):
+def resample_to_grid(spectra, variance, wave_pixel, wave_grid, *, extrapolate_px: float = 0.5):
     """Linear interpolation in wavelength of per-trace spectra onto a common grid.
 
     Each trace k has its own wavelength law ``wave_pixel[k]`` (increasing with x).
@@ -163,14 +163,16 @@ def resample_to_grid(spectra, variance, wave_pixel, wave_grid):
     variance ``(1 - a)^2 v_i + a^2 v_{i+1}`` (pixels taken as independent;
     the covariance this creates between neighbouring grid points is not kept).
     Values are per detector pixel (not per unit wavelength): the grid step
-    should match the pixel step. Grid points outside a trace's range, or next
-    to a NaN pixel, are NaN.
+    should match the pixel step. Grid points up to ``extrapolate_px`` pixel steps
+    beyond a trace's first or last pixel are extrapolated linearly from the two
+    edge pixels; farther ones, and those next to a NaN pixel, are NaN.
 
     Parameters
     ----------
     spectra, variance : array_like, shape (..., n_trace, n_x)
     wave_pixel : array_like, shape (n_trace, n_x), m
     wave_grid : array_like, shape (n_wave,), m
+    extrapolate_px : float >= 0
 
     Returns
     -------
@@ -187,7 +189,9 @@ def resample_to_grid(spectra, variance, wave_pixel, wave_grid):
         raise ValueError("wave_pixel must increase along x for every trace")
     n_t, n_x = wp.shape
     idx = np.stack([np.searchsorted(wp[k], g) - 1 for k in range(n_t)])   # (trace, wave)
-    inside = (g[None, :] >= wp[:, :1]) & (g[None, :] <= wp[:, -1:])
+    e = float(extrapolate_px)
+    inside = ((g[None, :] >= wp[:, :1] - e * (wp[:, 1:2] - wp[:, :1]))
+              & (g[None, :] <= wp[:, -1:] + e * (wp[:, -1:] - wp[:, -2:-1])))
     idx = np.clip(idx, 0, n_x - 2)
     tr = np.arange(n_t)[:, None]
     w0, w1 = wp[tr, idx], wp[tr, idx + 1]

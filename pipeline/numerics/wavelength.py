@@ -78,18 +78,19 @@ class ScanFit:
     snr: np.ndarray
 
 
-def _block_amplitudes(intensity, opd, sigma0, n_block):
+def _block_amplitudes(intensity, opd, sigma0, n_block, use):
     """Block-wise LS of a + C cos + S sin at wavenumber sigma0.
     intensity, opd: (sample, pix); sigma0: (pix,). Returns u, o_mean, noise, ok (pix, block)."""
     n_s, n_p = intensity.shape
-    lo, hi = opd.min(axis=0), opd.max(axis=0)
+    lo = np.where(use, opd, np.inf).min(axis=0)
+    hi = np.where(use, opd, -np.inf).max(axis=0)
     blk = np.clip(((opd - lo) / np.maximum(hi - lo, 1e-30) * n_block).astype(int), 0, n_block - 1)
     idx = (np.arange(n_p)[None, :] * n_block + blk).ravel()
     ph = 2 * np.pi * sigma0[None, :] * opd
     c, s, y = np.cos(ph), np.sin(ph), intensity
 
     def bsum(v):
-        return np.bincount(idx, weights=np.broadcast_to(v, (n_s, n_p)).ravel(),
+        return np.bincount(idx, weights=(use * np.broadcast_to(v, (n_s, n_p))).ravel(),
                            minlength=n_p * n_block).reshape(n_p, n_block)
 
     n = bsum(1.0)
@@ -115,7 +116,8 @@ def _block_amplitudes(intensity, opd, sigma0, n_block):
 
 
 def fit_fringe_scan(intensity, opd, wave_guess, *, n_block: int = 32, n_iter: int = 3,
-                    opd_span=None, bandwidth_guess=None, min_snr: float = 5.0) -> ScanFit:
+                    opd_span=None, bandwidth_guess=None, max_opd=None,
+                    min_snr: float = 5.0) -> ScanFit:
     """Effective wavelength, bandwidth, phase and amplitude of every pixel's fringes.
 
     Parameters
@@ -137,6 +139,8 @@ def fit_fringe_scan(intensity, opd, wave_guess, *, n_block: int = 32, n_iter: in
     bandwidth_guess : array_like, broadcastable to pixel_shape, m, optional
         First guess of the bandwidth where the block envelope shows no curvature
         (scan much shorter than the coherence length); default lambda / 200.
+    max_opd : array_like, broadcastable to pixel_shape, m, optional
+        Only samples with ``|opd| <= max_opd`` are fitted (the central fringe packet).
     min_snr : float -- blocks below this fringe SNR are left out of the fits
 
     Returns
@@ -154,10 +158,12 @@ def fit_fringe_scan(intensity, opd, wave_guess, *, n_block: int = 32, n_iter: in
     o = np.broadcast_to(np.asarray(opd, float), (n_s, *pshape)).reshape(n_s, -1)
     sig = 1.0 / np.asarray(wave_guess, float).reshape(-1)
     n_p = y.shape[1]
+    use = np.ones((n_s, n_p)) if max_opd is None else (
+        np.abs(o) <= np.broadcast_to(np.asarray(max_opd, float), pshape).reshape(-1)).astype(float)
     if n_s < 6 * n_block:
         n_block = max(n_s // 6, 4)
     for it in range(n_iter + 1):
-        u, ob, noise, ok = _block_amplitudes(y, o, sig, n_block)
+        u, ob, noise, ok = _block_amplitudes(y, o, sig, n_block, use)
         snr = np.abs(u) / noise
         good = ok & (snr > min_snr)
         w = np.where(good, np.abs(u) ** 2, 0.0)
@@ -196,7 +202,8 @@ def fit_fringe_scan(intensity, opd, wave_guess, *, n_block: int = 32, n_iter: in
         np.asarray(bandwidth_guess, float), pshape).reshape(-1) * sig ** 2
     dsig_ch = np.where(curved, np.sqrt(np.abs(c2) * _FOUR_LN2) / np.pi, fallback)
     centre = np.where(curved, -c1 / (2 * np.where(curved, c2, 1.0)), 0.0)
-    centre = np.clip(centre, o.min(0), o.max(0))
+    centre = np.clip(centre, np.where(use > 0, o, np.inf).min(0),
+                     np.where(use > 0, o, -np.inf).max(0))
     span = None if opd_span is None else np.broadcast_to(
         np.asarray(opd_span, float), (n_s, *pshape)).reshape(n_s, -1)
     # final step: Gauss-Newton on every sample, in chunks of pixels (bounded memory)
@@ -206,7 +213,7 @@ def fit_fringe_scan(intensity, opd, wave_guess, *, n_block: int = 32, n_iter: in
     for p0 in range(0, n_p, chunk):
         sl = slice(p0, min(n_p, p0 + chunk))
         r = _gauss_newton(y[:, sl], o[:, sl], None if span is None else span[:, sl],
-                          sig[sl], dsig_ch[sl], centre[sl])
+                          sig[sl], dsig_ch[sl], centre[sl], use[:, sl])
         for k in out:
             out[k][sl] = r[k]
     sig = out["sig"]
@@ -224,7 +231,7 @@ def fit_fringe_scan(intensity, opd, wave_guess, *, n_block: int = 32, n_iter: in
                    snr=snr_fit.reshape(pshape))
 
 
-def _gauss_newton(y, o, span, sig, dch, oc, n_iter=8):
+def _gauss_newton(y, o, span, sig, dch, oc, use, n_iter=8):
     """Levenberg-Marquardt fit of A0 + A1 o + env(o - oc) s(sig) Re[Z e^{-2 pi i sig o}]
     per pixel. y, o, span: (sample, pix); sig, dch, oc: (pix,)."""
     n_s, n_p = y.shape
@@ -239,16 +246,16 @@ def _gauss_newton(y, o, span, sig, dch, oc, n_iter=8):
         ph = 2 * np.pi * sig * o
         c, s = np.cos(ph), np.sin(ph)
         lin_b = np.stack([np.ones_like(o), o / oscale, env * c, env * s], -1)
-        m = np.einsum("spi,spj->pij", lin_b, lin_b)
+        m = np.einsum("sp,spi,spj->pij", use, lin_b, lin_b)
         lin = np.linalg.solve(m + 1e-12 * np.eye(4) * np.trace(m, axis1=1, axis2=2)[:, None, None],
-                              np.einsum("spi,sp->pi", lin_b, y)[..., None])[..., 0]
+                              np.einsum("spi,sp->pi", lin_b, use * y)[..., None])[..., 0]
         fr = lin[:, 2] * c + lin[:, 3] * s
         dfr = -lin[:, 2] * s + lin[:, 3] * c
         jac = np.concatenate([lin_b, np.stack([env * dfr * 2 * np.pi * o,
                                                env * fr * (-2 * k4 * dch * xo ** 2),
                                                env * fr * (2 * k4 * dch ** 2 * xo)], -1)], -1)
-        res = y - np.einsum("spi,pi->sp", lin_b, lin)
-        jtj = np.einsum("spi,spj->pij", jac, jac)
+        res = use * (y - np.einsum("spi,pi->sp", lin_b, lin))
+        jtj = np.einsum("sp,spi,spj->pij", use, jac, jac)
         norm = np.sqrt(np.maximum(np.einsum("pii->pi", jtj), 1e-300))
         jtj_n = jtj / norm[:, :, None] / norm[:, None, :]
         if it == n_iter:
@@ -258,7 +265,7 @@ def _gauss_newton(y, o, span, sig, dch, oc, n_iter=8):
         sig = sig + np.clip(step[:, 4], -0.05 / oscale, 0.05 / oscale)
         dch = np.abs(dch + np.clip(step[:, 5], -0.5 * dch, 0.5 * dch))
         oc = oc + np.clip(step[:, 6], -0.2 / np.maximum(dch, 1e-30), 0.2 / np.maximum(dch, 1e-30))
-    resvar = np.sum(res ** 2, 0) / max(n_s - 7, 1)
+    resvar = np.sum(res ** 2, 0) / np.maximum(use.sum(0) - 7, 1)
     cov = np.linalg.pinv(jtj_n) / norm[:, :, None] / norm[:, None, :] * resvar[:, None, None]
     return {"sig": sig, "sig_err": np.sqrt(np.abs(cov[:, 4, 4])), "dch": dch,
             "dch_err": np.sqrt(np.abs(cov[:, 5, 5])), "oc": oc,
@@ -267,7 +274,7 @@ def _gauss_newton(y, o, span, sig, dch, oc, n_iter=8):
 
 
 def fringe_phasor(intensity, opd, wave, bandwidth, *, opd_centre=0.0, opd_span=None,
-                  variance=None):
+                  variance=None, max_opd=None):
     """Linear least-squares fringe phasor of every pixel with known wavelength and envelope.
 
     Fits ``I = A0 + A1 o / o_max + env(o - o_c) s Re[Z exp(-2 pi i o / lambda)]`` where
@@ -280,6 +287,8 @@ def fringe_phasor(intensity, opd, wave, bandwidth, *, opd_centre=0.0, opd_span=N
     opd, opd_span : array_like, broadcastable to ``intensity``, m
     wave, bandwidth, opd_centre : array_like, broadcastable to pixel_shape, m
     variance : array_like, broadcastable to ``intensity``, optional (weights 1/variance)
+    max_opd : array_like, broadcastable to pixel_shape, m, optional -- only samples with
+        ``|opd| <= max_opd`` are used
 
     Returns
     -------
@@ -304,13 +313,16 @@ def fringe_phasor(intensity, opd, wave, bandwidth, *, opd_centre=0.0, opd_span=N
     basis = np.stack([np.ones_like(o), o / omax, env * np.cos(ph), env * np.sin(ph)], -1)
     w = np.ones_like(y) if variance is None else 1 / np.broadcast_to(
         np.asarray(variance, float), (n_s, *pshape)).reshape(n_s, -1)
+    if max_opd is not None:
+        w = w * (np.abs(o) <= np.broadcast_to(np.asarray(max_opd, float), pshape).reshape(-1))
     lhs = np.einsum("sp,spi,spj->pij", w, basis, basis)
     rhs = np.einsum("sp,spi,sp->pi", w, basis, y)
     cov = np.linalg.inv(lhs)
     sol = (cov @ rhs[..., None])[..., 0]
     if variance is None:       # scale by the residual variance
         res = y - np.einsum("spi,pi->sp", basis, sol)
-        cov = cov * (np.sum(res ** 2, 0) / max(n_s - 4, 1))[:, None, None]
+        n_used = (w > 0).sum(0)
+        cov = cov * (np.sum(w * res ** 2, 0) / np.maximum(n_used - 4, 1))[:, None, None]
     # Re[Z e^{-i ph}] = Re Z cos(ph) + Im Z sin(ph)
     z = sol[:, 2] + 1j * sol[:, 3]
     z_var = 0.5 * (cov[:, 2, 2] + cov[:, 3, 3])
@@ -362,19 +374,25 @@ def fit_dispersion_law(wave_measured, wave_err, *, deg: int = 3, clip: float = 4
     return law, coeffs, used, float(x_ref), float(x_scale)
 
 
-def common_grid(wave_pixel):
+def common_grid(wave_pixel, *, extrapolate_px: float = 0.5):
     """Common wavelength grid of a channel: the median over traces of each column's
-    wavelength, made strictly increasing.
+    wavelength, trimmed to the range every trace covers (to within ``extrapolate_px``
+    pixel steps, as ``pipeline.numerics.extraction.resample_to_grid`` allows).
 
     Parameters
     ----------
-    wave_pixel : array_like, shape (n_trace, n_x), m
+    wave_pixel : array_like, shape (n_trace, n_x), m, increasing along x
+    extrapolate_px : float >= 0
 
     Returns
     -------
-    grid : ndarray (n_x,), m
+    grid : ndarray (n_wave,), m, n_wave <= n_x
     """
-    g = np.median(np.asarray(wave_pixel, float), axis=0)
+    wp = np.asarray(wave_pixel, float)
+    g = np.median(wp, axis=0)
     if np.any(np.diff(g) <= 0):
         raise ValueError("median wavelength law is not increasing along x")
-    return g
+    e = float(extrapolate_px)
+    lo = np.max(wp[:, 0] - e * (wp[:, 1] - wp[:, 0]))
+    hi = np.min(wp[:, -1] + e * (wp[:, -1] - wp[:, -2]))
+    return g[(g >= lo * (1 - 1e-12)) & (g <= hi * (1 + 1e-12))]

@@ -90,12 +90,19 @@ def test_resample_linear_exact_and_variance():
     spec = 3.0 + 1e6 * wp                       # linear in wavelength: interpolation exact
     var = np.ones_like(spec)
     grid = np.linspace(2.0e-6, 2.41e-6, 30)
-    out, ov = resample_to_grid(spec[None], var[None], wp, grid)
+    out, ov = resample_to_grid(spec[None], var[None], wp, grid, extrapolate_px=0.0)
     inside = (grid >= wp[:, :1]) & (grid <= wp[:, -1:])
     np.testing.assert_allclose(out[0][inside], (3.0 + 1e6 * grid[None, :] * np.ones((2, 1)))[inside])
     assert np.isnan(out[0][~inside]).all()
     # variance of (1-a) s0 + a s1 with unit independent variances: (1-a)^2 + a^2
     a = (grid[5] - wp[0, 1]) / (wp[0, 2] - wp[0, 1])
     assert abs(ov[0, 0, 5] - ((1 - a) ** 2 + a ** 2)) < 1e-12
-    outc, _ = resample_to_grid((spec + 1j * spec)[None], var[None], wp, grid)
+    outc, _ = resample_to_grid((spec + 1j * spec)[None], var[None], wp, grid, extrapolate_px=0.0)
     np.testing.assert_allclose(outc[0].imag[inside], out[0][inside])
+    # half a pixel step of linear extrapolation: still exact for a linear spectrum
+    ext, _ = resample_to_grid(spec[None], var[None], wp, grid, extrapolate_px=0.5)
+    step = wp[:, 1] - wp[:, 0]
+    near = (grid >= wp[:, :1] - 0.5 * step[:, None]) & (grid <= wp[:, -1:] + 0.5 * step[:, None])
+    assert near.sum() > inside.sum()
+    np.testing.assert_allclose(ext[0][near], (3.0 + 1e6 * grid[None, :] * np.ones((2, 1)))[near])
+    assert np.isnan(ext[0][~near]).all()

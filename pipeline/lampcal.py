@@ -1,0 +1,335 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Lamp calibrations of one channel: flat and traces, wavelengths, combiner model.
+
+The glue between raw exposures (``pipeline.rawio.RawExposure``), upstream
+products (anything mapping dataset names to arrays, e.g. ``store.ProductView``)
+and the kernels in ``pipeline.numerics`` (traces, extraction, wavelength,
+combiner_model). Frames are read in chunks; at most one exposure's extracted
+spectra (frame, trace, x) are held at a time.
+
+Conventions: science traces ``output * n_pol + pol``; delay-scan OPD of the
+baseline (i, j) = metrology ``PATH[j] - PATH[i]``, averaged over each frame's
+exposure; fringe-tracker frames are centred half a period before their
+``TIME``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .errors import BadInput, MissingCalibration
+from .numerics import combiner_model as cm
+from .numerics.extraction import optimal_extract, resample_to_grid
+from .numerics.traces import combine_valid, find_traces, pixel_response, trace_profiles
+from .numerics.wavelength import (common_grid, fit_dispersion_law, fit_fringe_scan,
+                                  fringe_phasor)
+from .stage import Array
+
+__all__ = ["check_raw", "flat_products", "scan_spectra", "frame_opd", "wavecal_products",
+           "combiner_products", "ft_scan_counts", "ft_mean_counts"]
+
+
+def _where(view, default):
+    return str(getattr(view, "path", default))
+
+
+def check_raw(raws, *, kind, setup=None, polmode=None):
+    """Raise BadInput naming the file if an exposure is not of the expected kind/set-up."""
+    for r in raws:
+        if kind is not None and r.kind != kind:
+            raise BadInput(r.path, f"expected a {kind!r} exposure, found {r.kind!r}")
+        if setup is not None and (r.setup, r.polmode) != (setup, polmode):
+            raise BadInput(r.path, f"set-up {r.setup}/{r.polmode} does not match the "
+                                   f"calibration being built ({setup}/{polmode})")
+
+
+def _chunks(raw, frames_per_chunk):
+    for block in raw.science_pixels(frames_per_chunk).blocks:
+        yield np.asarray(block.compute(scheduler="synchronous"), float)
+
+
+def _nominal_trace_y(setup, polmode, n_out):
+    n_pol = setup.n_pol(polmode)
+    return np.array([setup.nominal_trace_y(o, p, polmode)
+                     for o in range(n_out) for p in range(n_pol)])
+
+
+# -- flat -----------------------------------------------------------------------------------
+
+def flat_products(raws, dark, *, instrument, setup_name, polmode, frames_per_chunk=16,
+                  centre_deg=2, sigma_deg=2, spectrum_deg=6, max_saturated=0.001,
+                  response_range=(0.5, 1.5)) -> dict:
+    """Traces, cross-profiles, pixel response and bad-pixel mask from lamp flats."""
+    check_raw(raws, kind="flat", setup=setup_name, polmode=polmode)
+    det = instrument.detectors["science"]
+    setup = instrument.setup(setup_name)
+    master = np.asarray(dark["master"], float)
+    total, n, sat = 0.0, 0, np.zeros(master.shape, bool)
+    for raw in raws:
+        for pix in _chunks(raw, frames_per_chunk):
+            if pix.shape[1:] != master.shape:
+                raise BadInput(raw.path, f"frames {pix.shape[1:]} do not match the dark "
+                                         f"{_where(dark, 'dark')} {master.shape}")
+            sat |= (pix >= det.saturation_adu).any(axis=0)
+            total = total + ((pix - master) * det.gain_e_per_adu).sum(axis=0)
+            n += pix.shape[0]
+    mean = total / n
+    valid0 = np.asarray(dark["valid"], bool) & ~sat & np.isfinite(mean)
+    nominal = _nominal_trace_y(setup, polmode, instrument.combiner.n_output)
+    rn = float(np.nanmedian(np.asarray(dark["read_noise"], float))) * det.gain_e_per_adu
+    fit = find_traces(np.where(valid0, mean, 0.0), nominal, valid=valid0,
+                      nominal_sigma=setup.trace_sigma_px, centre_deg=centre_deg,
+                      sigma_deg=sigma_deg, read_noise=rn / np.sqrt(n))
+    core = trace_profiles(fit.trace_y, fit.profile_sigma, n_y=master.shape[0]).max(0) > 0.1
+    frac = (sat & core).sum() / max(core.sum(), 1)
+    if frac > max_saturated:
+        raise BadInput(raws[0].path, f"{100 * frac:.2f}% of the trace pixels are saturated in "
+                                     "the flat; take flats with a shorter DIT")
+    response, lamp = pixel_response(np.where(valid0, mean, 0.0), fit.trace_y, fit.profile_sigma,
+                                    valid=valid0, smooth_deg=min(spectrum_deg, setup.n_x - 2))
+    valid = combine_valid(dark["valid"], response, flat_saturated=sat,
+                          response_range=response_range)
+    tr, yx = ("trace", "x"), ("y", "x")
+    return {"trace_y": Array(fit.trace_y, tr, "px", "trace centre, smooth law"),
+            "profile_sigma": Array(fit.profile_sigma, tr, "px",
+                                   "Gaussian cross-profile width (pixel-integrated model)"),
+            "pixel_response": Array(response, yx, "", "flat field; divide frames by it"),
+            "valid": Array(valid, yx, "", "True = usable pixel (dark and flat masks)"),
+            "lamp_spectrum": Array(lamp / raws[0].dit, tr, "e-/s", "smoothed lamp spectrum"),
+            "trace_y_measured": Array(fit.centre_measured, tr, "px", "QC: per-column centre"),
+            "profile_sigma_measured": Array(fit.sigma_measured, tr, "px", "QC"),
+            "trace_residual_rms": Array(fit.centre_residual_rms, ("trace",), "px", "QC"),
+            "centre_coeffs": Array(fit.centre_coeffs, ("trace", "coef"), "px",
+                                   "polynomial in (x - x_ref) / x_scale, lowest order first"),
+            "x_ref": fit.x_ref, "x_scale": fit.x_scale, "n_frame": n,
+            "n_invalid": int((~valid).sum()), "setup": setup_name, "polmode": polmode}
+
+
+# -- extraction of lamp exposures ----------------------------------------------------------
+
+def _extraction_setup(dark, flat, instrument):
+    det = instrument.detectors["science"]
+    master = np.asarray(dark["master"], float)
+    response = np.asarray(flat["pixel_response"], float)
+    good = np.asarray(dark["valid"], bool) & np.asarray(flat["valid"], bool)
+    good &= np.isfinite(master) & np.isfinite(response) & (response > 0)
+    rn = np.asarray(dark["read_noise"], float) * det.gain_e_per_adu
+    typical = np.nanmedian(rn[good])
+    rn = np.where(good & np.isfinite(rn), np.fmax(rn, typical), typical)
+    prof = trace_profiles(np.asarray(flat["trace_y"], float),
+                          np.asarray(flat["profile_sigma"], float), n_y=master.shape[0])
+    return det, master, np.where(good, response, 1.0), good, rn, prof
+
+
+def scan_spectra(raw, dark, flat, *, instrument, frames_per_chunk=16, max_saturated=0.001):
+    """Optimally extracted spectra of every frame of a lamp exposure.
+
+    Returns
+    -------
+    flux, variance : ndarray (frame, trace, x), e- per frame
+    """
+    det, master, response, good, rn, prof = _extraction_setup(dark, flat, instrument)
+    core = prof.max(0) > 0.1
+    flux, var = [], []
+    for pix in _chunks(raw, frames_per_chunk):
+        if pix.shape[1:] != master.shape:
+            raise BadInput(raw.path, f"frames {pix.shape[1:]} do not match the dark "
+                                     f"{_where(dark, 'dark')} {master.shape}")
+        sat = pix >= det.saturation_adu
+        frac = (sat & core).sum() / (core.sum() * pix.shape[0])
+        if frac > max_saturated:
+            raise BadInput(raw.path, f"{100 * frac:.2f}% of the trace pixels are saturated; "
+                                     "lamp frames must not saturate")
+        valid = good & ~sat
+        e = np.where(valid, (pix - master) * det.gain_e_per_adu / response, 0.0)
+        ext = optimal_extract(e, prof, read_noise=rn, valid=valid, nan_policy="mask")
+        flux.append(ext.flux)
+        var.append(ext.variance)
+    return np.concatenate(flux), np.concatenate(var)
+
+
+def frame_opd(times, metro_time, metro_path, baselines):
+    """Mean OPD and OPD travelled of every baseline during each frame.
+
+    Parameters
+    ----------
+    times : (start (frame,), exposure (frame,)) s
+    metro_time : (sample,) s; metro_path : (sample, 4) m
+    baselines : sequence of (i, j)
+
+    Returns
+    -------
+    opd, span : ndarray (frame, baseline), m
+    """
+    start, exp = (np.asarray(a, float) for a in times)
+    t = np.asarray(metro_time, float)
+    path = np.asarray(metro_path, float)
+    opd_t = np.stack([path[:, j] - path[:, i] for i, j in baselines], 1)
+    cum = np.concatenate([np.zeros((1, opd_t.shape[1])), np.cumsum(opd_t, 0)])
+    i0, i1 = np.searchsorted(t, start), np.searchsorted(t, start + exp)
+    n = (i1 - i0)[:, None]
+    at = np.stack([np.interp(start + exp / 2, t, o) for o in opd_t.T], 1)
+    mean = np.where(n > 0, (cum[i1] - cum[i0]) / np.maximum(n, 1), at)
+    ends = [np.stack([np.interp(x, t, o) for o in opd_t.T], 1) for x in (start, start + exp)]
+    return mean, np.abs(ends[1] - ends[0])
+
+
+def ft_scan_counts(raw, ft_dark, *, instrument):
+    """Dark-subtracted FT counts (ft_frame, output, ft_wave) e-, OPD and span per output."""
+    det = instrument.detectors[instrument.fringe_tracker.detector]
+    counts = np.asarray(raw.ft_counts(), float)
+    master = np.asarray(ft_dark["master"], float)
+    if counts.shape[1:] != master.shape:
+        raise BadInput(raw.path, f"FT counts {counts.shape[1:]} do not match the FT dark "
+                                 f"{_where(ft_dark, 'ft dark')} {master.shape}")
+    if (counts >= det.saturation_adu).mean() > 0.001:
+        raise BadInput(raw.path, "fringe-tracker lamp counts are saturated")
+    period = float(raw.header["FTPERIOD"])
+    t_end = np.asarray(raw.ft_time(), float)
+    t, path = raw.metrology()
+    opd, span = frame_opd((t_end - period, np.full(t_end.size, period)), t, path,
+                          instrument.combiner.baselines)
+    b = instrument.combiner.output_baseline
+    return (counts - master) * det.gain_e_per_adu, opd[:, b], span[:, b]
+
+
+def ft_mean_counts(raw, ft_dark, *, instrument):
+    """Mean dark-subtracted FT counts (output, ft_wave), e- per frame."""
+    det = instrument.detectors[instrument.fringe_tracker.detector]
+    counts = np.asarray(raw.ft_counts(), float)
+    return (counts.mean(0) - np.asarray(ft_dark["master"], float)) * det.gain_e_per_adu
+
+
+# -- wavelengths ----------------------------------------------------------------------------
+
+def _bandwidth_law(bw, bw_err, law, *, max_rel_err=0.02):
+    """Per-trace LSF FWHM in pixels from the measured bandwidths; traces whose own
+    measurement is poorer than ``max_rel_err`` adopt the median of the others."""
+    disp = np.abs(np.gradient(law, axis=1))                        # m / px
+    fw = bw / disp
+    w = np.where(np.isfinite(fw) & np.isfinite(bw_err) & (bw_err > 0), (disp / bw_err) ** 2, 0.0)
+    wsum = w.sum(1)
+    mean = np.where(wsum > 0, (w * np.nan_to_num(fw)).sum(1) / np.maximum(wsum, 1e-300), np.nan)
+    rel = 1 / np.sqrt(np.maximum(wsum, 1e-300)) / np.where(np.isfinite(mean), mean, 1.0)
+    measured = np.isfinite(mean) & (rel < max_rel_err)
+    if not measured.any():
+        raise ValueError("no trace has a measurable fringe envelope: the scan is too short "
+                         "for the bandwidth")
+    fwhm_px = np.where(measured, mean, np.median(mean[measured]))
+    return fwhm_px[:, None] * disp, fwhm_px, measured
+
+
+def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trace", "x"),
+                     min_snr=5.0, max_bw_rel_err=0.02, max_opd=None) -> dict:
+    """Wavelength products of a channel from scan intensities (frame, trace, x);
+    ``max_opd`` (m, broadcastable to (trace, x)) limits the fit to the central packet."""
+    ok = np.isfinite(intensity)
+    dead = ~ok.all(axis=0)                                   # pixels never extracted
+    fill = np.where(ok, intensity, np.nanmedian(np.where(ok, intensity, np.nan), axis=0))
+    fit = fit_fringe_scan(np.nan_to_num(fill), opd, wave_guess, opd_span=span, min_snr=min_snr,
+                          max_opd=max_opd)
+    wave = np.where(dead, np.nan, fit.wave)
+    law, coeffs, used, x_ref, x_scale = fit_dispersion_law(wave, fit.wave_err, deg=law_deg)
+    bw, fwhm_px, measured = _bandwidth_law(np.where(dead, np.nan, fit.bandwidth),
+                                           fit.bandwidth_err, law, max_rel_err=max_bw_rel_err)
+    grid = common_grid(law)
+    bw_grid = np.median(np.stack([np.interp(grid, law[k], bw[k]) for k in range(law.shape[0])]),
+                        axis=0)
+    res = np.where(used, wave - law, np.nan)
+    return {"wave_pixel": Array(law, axes, "m", "effective vacuum wavelength (smooth law)"),
+            "bandwidth_pixel": Array(bw, axes, "m", "effective FWHM bandwidth"),
+            "law_coeffs": Array(coeffs, (axes[0], "coef"), "m",
+                                "polynomial in (x - x_ref) / x_scale, lowest order first"),
+            "wave_grid": Array(grid, ("wave",), "m", "common grid: median law over traces"),
+            "bandwidth_grid": Array(bw_grid, ("wave",), "m"),
+            "wave_measured": Array(wave, axes, "m", "QC: per-pixel fringe wavelength"),
+            "wave_err": Array(fit.wave_err, axes, "m", "QC: its 1-sigma error"),
+            "bandwidth_measured": Array(fit.bandwidth, axes, "m", "QC: per-pixel envelope"),
+            "fringe_snr": Array(fit.snr, axes, "", "QC"),
+            "law_residual_rms": Array(np.sqrt(np.nanmean(res ** 2, axis=1)), (axes[0],), "m",
+                                      "QC: RMS of measured minus law"),
+            "lsf_fwhm_px": Array(fwhm_px, (axes[0],), "px", "line-spread FWHM per trace"),
+            "bandwidth_is_measured": Array(measured, (axes[0],), "",
+                                           "False: median of the other traces adopted"),
+            "x_ref": x_ref, "x_scale": x_scale, "n_law_rejected": int((~used & ~dead).sum())}
+
+
+# -- combiner -------------------------------------------------------------------------------
+
+def _to_pol_output(a, n_pol):
+    """(..., trace, wave) with trace = output * n_pol + pol -> (..., pol, output, wave)."""
+    s = a.shape
+    return np.moveaxis(a.reshape(s[:-2] + (s[-2] // n_pol, n_pol, s[-1])), -2, -3)
+
+
+def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pixel,
+                      bandwidth_pixel, wave_grid, n_pol, instrument, resample=True,
+                      window_coherence=0.5) -> dict:
+    """Combiner calibration from single-beam mean spectra and the delay scan.
+
+    Parameters
+    ----------
+    beam_flux : (telescope, trace, x) mean flux with telescope i lit
+    scan_intensity, scan_var : (frame, trace, x); opd, span : broadcastable, m
+    wave_pixel, bandwidth_pixel : (trace, x) m; wave_grid : (wave,) m
+    resample : bool -- resample traces to ``wave_grid`` (science); False for the fringe
+        tracker, calibrated per pixel (its ``wave`` axis is the FT pixel)
+    window_coherence : float -- fringe phasors are fitted within this many coherence
+        lengths lambda^2 / bandwidth of zero OPD
+    """
+    comb = instrument.combiner
+    ok = np.isfinite(scan_intensity)
+    fill = np.where(ok, scan_intensity, np.nanmedian(np.where(ok, scan_intensity, np.nan), 0))
+    wave_pixel, bandwidth_pixel = np.asarray(wave_pixel), np.asarray(bandwidth_pixel)
+    z, z_var, dc = fringe_phasor(np.nan_to_num(fill), opd, wave_pixel, bandwidth_pixel,
+                                 opd_span=span,
+                                 max_opd=window_coherence * wave_pixel ** 2 / bandwidth_pixel)
+    if resample:
+        def grid(a, v=None):
+            v = np.zeros(a.shape) if v is None else v
+            return resample_to_grid(a, v, wave_pixel, wave_grid)
+        beam = grid(beam_flux)[0]
+        zg, dcg = grid(z)[0], grid(dc)[0]
+        intens, ivar = grid(scan_intensity, scan_var)
+    else:
+        beam, zg, dcg, intens, ivar = beam_flux, z, dc, scan_intensity, scan_var
+    t = cm.transmissions(_to_pol_output(beam, n_pol))
+    contrast, phase, lamp = cm.contrast_and_phase(_to_pol_output(zg, n_pol),
+                                                  _to_pol_output(dcg, n_pol), t, comb.output_pair)
+    v2pm = cm.build_v2pm(t, contrast, phase, comb.output_pair, n_baseline=len(comb.baselines))
+    weights = cm.output_noise_weights(v2pm)
+    p2vm = cm.weighted_pinv(v2pm, weights=weights)
+    res, chi2 = cm.model_residuals(v2pm, p2vm, _to_pol_output(intens, n_pol),
+                                   variance=_to_pol_output(ivar, n_pol))
+    closure, imbalance, off = cm.phase_set_qc(phase, comb.output_nominal_phase_rad)
+    pow_, pw, pb = ("pol", "output", "wave"), ("pol", "wave"), ("pol", "baseline", "wave")
+    return {"transmission": Array(t, ("pol", "output", "telescope", "wave"), "",
+                                  "share of each telescope's flux per output"),
+            "contrast": Array(contrast, pow_, ""), "phase_shift": Array(phase, pow_, "rad"),
+            "v2pm": Array(v2pm, ("pol", "wave", "output", "unknown"), "",
+                          "columns F_0..F_3, Re C_01..Re C_23, Im C_01..Im C_23"),
+            "p2vm": Array(p2vm, ("pol", "wave", "unknown", "output"), "",
+                          "noise-weighted pseudo-inverse of v2pm"),
+            "condition": Array(cm.condition_number(v2pm), pw, ""),
+            "output_weights": Array(weights, ("pol", "wave", "output"), "",
+                                    "relative inverse variances used in p2vm"),
+            "lamp_flux": Array(lamp, ("pol", "telescope", "wave"), "e-", "scan lamp F_i"),
+            "model_chi2": Array(chi2, pw, "", "QC: reduced chi2 of the model on the scan"),
+            "residual_rms": Array(np.sqrt(np.nanmean(res ** 2, axis=0)), pow_, "e-", "QC"),
+            "phase_closure": Array(closure, pb, "rad", "QC: 0 for an ordered ABCD set"),
+            "phase_imbalance": Array(imbalance, pb, "", "QC: |mean exp(i theta)|"),
+            "phase_offset_rms": Array(off, pb, "rad", "QC: scatter of theta - nominal"),
+            "wave": Array(np.asarray(wave_grid, float), ("wave",), "m")}
+
+
+def require_beams(raws):
+    """Single-beam exposures by telescope (0-based); MissingCalibration if one is absent."""
+    lit = {}
+    for r in raws:
+        lit.setdefault(int(r.header["LAMPTEL"]) - 1, r)
+    missing = sorted(set(range(4)) - set(lit))
+    if missing:
+        where = raws[0].path if raws else "lamp-beam"
+        raise MissingCalibration(where, f"no single-beam lamp exposure for beam(s) "
+                                        f"{[m + 1 for m in missing]}")
+    return [lit[i] for i in range(4)]

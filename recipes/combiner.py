@@ -1,0 +1,87 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Stage ``combiner``: transmissions, contrasts and phase shifts of the 24 outputs from
+single-beam and delay-scan lamp frames, the visibility-to-pixel matrix and its
+noise-weighted inverse, per science set-up and polarisation mode and for the fringe tracker."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from pipeline.errors import MissingCalibration
+from pipeline.inventory import Inventory, ft_dark_label, sci_channel
+from pipeline.lampcal import (check_raw, combiner_products, frame_opd, ft_mean_counts,
+                              ft_scan_counts, require_beams, scan_spectra)
+from pipeline.stage import Stage, Unit
+from recipes.flat import needs_dark
+from recipes.wavecal import ft_scan_record
+
+
+@dataclass(frozen=True)
+class CombinerParams:
+    frames_per_chunk: int = 16      # frames read at a time (bounded memory)
+    window: float = 0.5             # fringe phasors fitted within this many coherence lengths
+
+    def __post_init__(self):
+        if self.frames_per_chunk < 1 or self.window <= 0:
+            raise ValueError("combiner needs frames_per_chunk >= 1 and window > 0")
+
+
+def plan(inventory: Inventory, params: CombinerParams, upstream) -> list[Unit]:
+    cals = {u.label for u in upstream.get("wavecal", [])}
+    units = []
+    for setup, polmode in inventory.channels():
+        label = sci_channel(setup, polmode)
+        beams = inventory.select("lamp-beam", setup, polmode)
+        scans = inventory.select("lamp-scan", setup, polmode)
+        if label not in cals:
+            continue
+        nb, pb = needs_dark(inventory, beams, "dark_beam") if beams else ({}, None)
+        ns, ps = needs_dark(inventory, scans[-1:], "dark_scan")
+        problem = pb or ps or (() if beams else (scans[-1].path, f"no lamp-beam in {label}"))
+        units.append(Unit(label=label, raw=tuple(r.path for r in beams) + (scans[-1].path,),
+                          needs={**nb, **ns, "flat": ("flat", label), "wavecal": ("wavecal", label)},
+                          meta={"channel": "sci", "setup": setup, "polmode": polmode,
+                                "problem": list(problem)}))
+    rec = ft_scan_record(inventory)
+    if rec is not None and "ft" in cals:
+        beams = inventory.select("lamp-beam", rec.setup, rec.polmode)
+        key = inventory.ft_dark_for(rec)
+        units.append(Unit(label="ft", raw=tuple(r.path for r in beams) + (rec.path,),
+                          needs={"ft_dark": ("dark", ft_dark_label(key)), "wavecal": ("wavecal", "ft")},
+                          meta={"channel": "ft", "problem": [] if beams else
+                                [rec.path, "no lamp-beam exposures for the fringe tracker"]}))
+    return units
+
+
+def run(inputs, params: CombinerParams) -> dict:
+    meta, inst, p = inputs.unit.meta, inputs.instrument, inputs.products
+    if meta["problem"]:
+        raise MissingCalibration(*meta["problem"])
+    *beam_raws, scan = inputs.raw
+    beams = require_beams(beam_raws)
+    check_raw([scan], kind="lamp-scan")
+    wc = p["wavecal"]
+    common = dict(wave_pixel=wc["wave_pixel"], bandwidth_pixel=wc["bandwidth_pixel"],
+                  wave_grid=wc["wave_grid"], instrument=inst, window_coherence=params.window)
+    if meta["channel"] == "ft":
+        counts, opd, span = ft_scan_counts(scan, p["ft_dark"], instrument=inst)
+        beam = np.stack([ft_mean_counts(r, p["ft_dark"], instrument=inst) for r in beams])
+        return combiner_products(beam, counts, np.abs(counts) + 1.0, opd[..., None],
+                                 span[..., None], n_pol=1, resample=False, **common)
+    check_raw(beams + [scan], kind=None, setup=meta["setup"], polmode=meta["polmode"])
+    n_pol = inst.setup(meta["setup"]).n_pol(meta["polmode"])
+    kw = dict(instrument=inst, frames_per_chunk=params.frames_per_chunk)
+    beam = np.stack([np.nanmean(scan_spectra(r, p["dark_beam"], p["flat"], **kw)[0], 0)
+                     for r in beams])
+    flux, var = scan_spectra(scan, p["dark_scan"], p["flat"], **kw)
+    opd, span = frame_opd(scan.frame_times(), *scan.metrology(), inst.combiner.baselines)
+    base = inst.combiner.output_baseline[np.arange(flux.shape[1]) // n_pol]
+    return combiner_products(beam, flux, var, opd[:, base, None], span[:, base, None],
+                             n_pol=n_pol, **common)
+
+
+STAGE = Stage(name="combiner", version="1", params=CombinerParams, after=("dark", "flat", "wavecal"),
+              granularity="setup", plan=plan, run=run,
+              doc="transmissions, contrasts, phase shifts, visibility-to-pixel matrix and inverse")

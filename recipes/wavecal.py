@@ -1,0 +1,96 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Stage ``wavecal``: effective wavelength and bandwidth of every spectral pixel from the
+lamp delay scan (Fourier-transform spectroscopy), smooth law per trace, common grid;
+one unit per science set-up and polarisation mode, and one for the fringe tracker."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from pipeline.errors import MissingCalibration
+from pipeline.inventory import Inventory, ft_dark_label, sci_channel
+from pipeline.lampcal import check_raw, frame_opd, ft_scan_counts, scan_spectra, wavecal_products
+from pipeline.stage import Stage, Unit
+from recipes.flat import needs_dark
+
+
+@dataclass(frozen=True)
+class WavecalParams:
+    law_deg: int = 3                # polynomial degree of lambda(x), science traces
+    ft_law_deg: int = 2             # ... fringe-tracker outputs (few pixels)
+    min_snr: float = 5.0            # pixels with a weaker fringe get no wavelength
+    max_bw_rel_err: float = 0.02    # poorer per-trace bandwidths adopt the channel median
+    window: float = 2.0             # fit |OPD| < window x nominal coherence length, science
+    ft_window: float = 0.6          # ... fringe tracker (central fringe packet only)
+    frames_per_chunk: int = 16      # frames read at a time (bounded memory)
+
+    def __post_init__(self):
+        if not (0 <= self.law_deg <= 6 and 0 <= self.ft_law_deg <= 4):
+            raise ValueError("wavecal law degrees must be in 0..6 (ft 0..4)")
+        if self.window <= 0 or self.ft_window <= 0:
+            raise ValueError("wavecal windows must be positive (coherence lengths)")
+        if self.min_snr <= 0 or not 0 < self.max_bw_rel_err < 1 or self.frames_per_chunk < 1:
+            raise ValueError("wavecal needs min_snr > 0, 0 < max_bw_rel_err < 1, "
+                             "frames_per_chunk >= 1")
+
+
+def ft_scan_record(inventory: Inventory):
+    """The delay scan used for the fringe tracker: the longest one of the night."""
+    scans = inventory.select("lamp-scan")
+    return max(scans, key=lambda r: (r.nframe * r.dit, -r.mjd)) if scans else None
+
+
+def plan(inventory: Inventory, params: WavecalParams, upstream) -> list[Unit]:
+    flats = {u.label for u in upstream.get("flat", [])}
+    units = []
+    for setup, polmode in inventory.channels():
+        recs = inventory.select("lamp-scan", setup, polmode)
+        label = sci_channel(setup, polmode)
+        if not recs or label not in flats:
+            continue
+        needs, problem = needs_dark(inventory, recs[-1:])
+        units.append(Unit(label=label, raw=(recs[-1].path,), needs={**needs, "flat": ("flat", label)},
+                          meta={"channel": "sci", "setup": setup, "polmode": polmode,
+                                "problem": list(problem or ())}))
+    rec = ft_scan_record(inventory)
+    if rec is not None:
+        key = inventory.ft_dark_for(rec)
+        problem = [] if key else [rec.path, f"no dark with FT period {rec.ft_period:g} s"]
+        units.append(Unit(label="ft", raw=(rec.path,), meta={"channel": "ft", "problem": problem},
+                          needs={"ft_dark": ("dark", ft_dark_label(key))} if key else {}))
+    return units
+
+
+def run(inputs, params: WavecalParams) -> dict:
+    meta, inst, raw = inputs.unit.meta, inputs.instrument, inputs.raw[0]
+    if meta["problem"]:
+        raise MissingCalibration(*meta["problem"])
+    comb = inst.combiner
+    if meta["channel"] == "ft":
+        check_raw([raw], kind="lamp-scan")
+        counts, opd, span = ft_scan_counts(raw, inputs.products["ft_dark"], instrument=inst)
+        ft = inst.fringe_tracker
+        guess = np.broadcast_to(ft.nominal_wavelength_m(), counts.shape[1:])
+        bw = ft.channel_fwhm_px * (ft.wave_max_m - ft.wave_min_m) / (ft.n_wave - 1)
+        return wavecal_products(counts, opd[..., None], span[..., None], guess,
+                                max_opd=params.ft_window * guess ** 2 / bw,
+                                law_deg=params.ft_law_deg, axes=("output", "ft_wave"),
+                                min_snr=params.min_snr, max_bw_rel_err=params.max_bw_rel_err)
+    setup = inst.setup(meta["setup"])
+    check_raw([raw], kind="lamp-scan", setup=meta["setup"], polmode=meta["polmode"])
+    flux, _ = scan_spectra(raw, inputs.products["dark"], inputs.products["flat"], instrument=inst,
+                           frames_per_chunk=params.frames_per_chunk)
+    opd, span = frame_opd(raw.frame_times(), *raw.metrology(), comb.baselines)
+    base = comb.output_baseline[np.arange(flux.shape[1]) // setup.n_pol(meta["polmode"])]
+    guess = np.broadcast_to(setup.nominal_wavelength_m(), flux.shape[1:])
+    bw = setup.channel_fwhm_px * setup.dispersion_m_per_px
+    return wavecal_products(flux, opd[:, base, None], span[:, base, None], guess,
+                            max_opd=params.window * guess ** 2 / bw, law_deg=params.law_deg, min_snr=params.min_snr,
+                            max_bw_rel_err=params.max_bw_rel_err)
+
+
+STAGE = Stage(name="wavecal", version="1", params=WavecalParams, after=("dark", "flat"),
+              granularity="setup", plan=plan, run=run,
+              doc="effective wavelengths and bandwidths from delay scans, common grid")
