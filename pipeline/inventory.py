@@ -90,12 +90,13 @@ class Inventory:
 
     @classmethod
     def scan(cls, night_dir, instrument=None) -> "Inventory":
-        """Read the primary header of every ``*.fits`` file under ``night_dir``."""
+        """Read the primary header of every ``*.fits`` file in ``night_dir`` (not in its
+        sub-directories, where a work directory's OIFITS files may live)."""
         night = Path(night_dir).resolve()
         if not night.is_dir():
             raise BadInput(night, "night directory not found")
         inv = cls(str(night))
-        for path in sorted(night.rglob("*.fits")):
+        for path in sorted(night.glob("*.fits")):
             try:
                 inv.records.append(Record.from_raw(RawExposure(path, instrument)))
             except BadInput as exc:

@@ -315,3 +315,19 @@ def test_a_failing_plan_fails_its_stage_only(night, tmp_path):
                      progress=False)
     assert summary.failed == [("broken", "(plan)", "KeyError: 'no such set-up'")]
     assert set(summary.computed) == {("inventory", "night")} | DARKS and summary.exit_code == 1
+
+
+def test_instrument_model_change_makes_everything_stale(night, tmp_path, monkeypatch):
+    import pipeline.engine as engine
+    work = tmp_path / "w"
+    reduce(night, work, stages=STAGES, progress=False)
+    monkeypatch.setattr(engine, "_instrument_hash", lambda: "edited calib/instrument.toml")
+    assert set(_states(work).values()) == {"stale"}
+
+
+def test_work_directory_inside_the_night(night, rng):
+    """Products written under the night (e.g. OIFITS files) are not mistaken for raw files."""
+    work = night / "work"
+    (work / "oifits").mkdir(parents=True)
+    (work / "oifits" / "x.fits").write_bytes(b"not raw")
+    assert reduce(night, work, stages=STAGES, progress=False).exit_code == 0
