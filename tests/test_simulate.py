@@ -397,3 +397,14 @@ def test_fringe_tracker_sees_an_unresolved_star(bright_night, instrument):
             # ~1600 e- per pixel and ms: closure phases good to a fraction of a degree;
             # 2 deg allows for the same output-wavelength mixing
             assert abs(np.rad2deg(np.angle(bis))) < 2.0, (p, a, b, cc)
+
+
+def test_scenario_set_up_must_exist(tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_text((SCENARIO_DIR / "tiny.toml").read_text().replace(
+        'polmode', 'x').replace('setup = "low"\ndit = 0.1', 'setup = "low"\npolmode = "both"\ndit = 0.1', 1))
+    with pytest.raises(ConfigError, match=r"bad\.toml.*polarisation mode 'both'"):
+        simulate_night(tmp_path / "n", scenario=bad)
+    bad.write_text((SCENARIO_DIR / "tiny.toml").read_text().replace('setup = "low"', 'setup = "high"'))
+    with pytest.raises(ConfigError, match=r"bad\.toml.*set-up 'high'"):
+        simulate_night(tmp_path / "n", scenario=bad)

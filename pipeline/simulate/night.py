@@ -57,7 +57,12 @@ def plan_night(sc: Scenario, inst: Instrument) -> list[Planned]:
         if (e.setup, e.polmode) not in modes:
             modes.append((e.setup, e.polmode))
     for setup, polmode in modes:
-        inst.setup(setup)
+        if setup not in inst.setups:
+            raise_config(sc, f"set-up {setup!r} is not in the instrument model "
+                             f"({sorted(inst.setups)})")
+        if polmode not in inst.setups[setup].polarisation:
+            raise_config(sc, f"polarisation mode {polmode!r} is not offered by set-up "
+                             f"{setup!r} ({list(inst.setups[setup].polarisation)})")
         if setup not in cal:
             raise_config(sc, f"missing section [calibration.{setup}] for set-up {setup!r}")
     dark_n = int(cal.get("dark_nframe", 5))

@@ -203,11 +203,10 @@ def load_scenario(scenario: str | os.PathLike = "tiny") -> Scenario:
         if kind not in ON_SKY:
             raise ConfigError(src, f"field '{w}kind' must be one of {ON_SKY} (calibrations "
                                    f"are planned from [calibration]), found {kind!r}")
-        target = e.get("target", "")
-        if kind != "sky" and target not in targets:
-            raise ConfigError(src, f"field '{w}target' names no target: {target!r}")
-        if kind == "sky" and target and target not in targets:
-            raise ConfigError(src, f"field '{w}target' names no target: {target!r}")
+        target = _req(e, "target", str, src, w)
+        if target not in targets:
+            raise ConfigError(src, f"field '{w}target' names no target: {target!r} "
+                                   f"(sky exposures name the target they are taken near)")
         seq.append(Exposure(kind=kind, setup=_req(e, "setup", str, src, w),
                             polmode=e.get("polmode", "joint"), dit=_req(e, "dit", float, src, w),
                             nframe=_req(e, "nframe", int, src, w), target=target,
