@@ -148,8 +148,23 @@ def scan_spectra(raw, dark, flat, *, instrument, frames_per_chunk=16, max_satura
     return np.concatenate(flux), np.concatenate(var)
 
 
+def _integral(t_s, y_s, t):
+    """Integral from t_s[0] to t of the piecewise-linear interpolant of (t_s, y_s);
+    y_s (sample, n), t (m,) -> (m, n). Constant extrapolation outside."""
+    seg = np.diff(t_s)[:, None] * (y_s[1:] + y_s[:-1]) / 2
+    cum = np.concatenate([np.zeros((1, y_s.shape[1])), np.cumsum(seg, 0)])
+    tc = np.clip(t, t_s[0], t_s[-1])
+    k = np.clip(np.searchsorted(t_s, tc) - 1, 0, t_s.size - 2)
+    y_t = np.stack([np.interp(tc, t_s, y) for y in y_s.T], 1)
+    out = cum[k] + (tc - t_s[k])[:, None] * (y_s[k] + y_t) / 2
+    return out + (t - tc)[:, None] * y_t
+
+
 def frame_opd(times, metro_time, metro_path, baselines):
     """Mean OPD and OPD travelled of every baseline during each frame.
+
+    The mean is the exact average over the exposure of the metrology's
+    piecewise-linear interpolant (unbiased for any sampling of either clock).
 
     Parameters
     ----------
@@ -165,11 +180,7 @@ def frame_opd(times, metro_time, metro_path, baselines):
     t = np.asarray(metro_time, float)
     path = np.asarray(metro_path, float)
     opd_t = np.stack([path[:, j] - path[:, i] for i, j in baselines], 1)
-    cum = np.concatenate([np.zeros((1, opd_t.shape[1])), np.cumsum(opd_t, 0)])
-    i0, i1 = np.searchsorted(t, start), np.searchsorted(t, start + exp)
-    n = (i1 - i0)[:, None]
-    at = np.stack([np.interp(start + exp / 2, t, o) for o in opd_t.T], 1)
-    mean = np.where(n > 0, (cum[i1] - cum[i0]) / np.maximum(n, 1), at)
+    mean = (_integral(t, opd_t, start + exp) - _integral(t, opd_t, start)) / exp[:, None]
     ends = [np.stack([np.interp(x, t, o) for o in opd_t.T], 1) for x in (start, start + exp)]
     return mean, np.abs(ends[1] - ends[0])
 

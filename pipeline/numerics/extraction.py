@@ -158,12 +158,15 @@ def resample_to_grid(spectra, variance, wave_pixel, wave_grid, *, extrapolate_px
     """Linear interpolation in wavelength of per-trace spectra onto a common grid.
 
     Each trace k has its own wavelength law ``wave_pixel[k]`` (increasing with x).
-    A grid point between pixels i and i+1 of a trace gets
-    ``(1 - a) s_i + a s_{i+1}`` with ``a = (g - w_i) / (w_{i+1} - w_i)``, and
-    variance ``(1 - a)^2 v_i + a^2 v_{i+1}`` (pixels taken as independent;
-    the covariance this creates between neighbouring grid points is not kept).
-    Values are per detector pixel (not per unit wavelength): the grid step
-    should match the pixel step. Grid points up to ``extrapolate_px`` pixel steps
+    Per-pixel values are first divided by the trace's own dispersion
+    ``d_i = d lambda / dx`` (m per pixel, ``numpy.gradient`` of the law), making them
+    spectral densities, which agree between traces of different dispersion; a grid
+    point between pixels i and i+1 then gets ``((1 - a) s_i / d_i + a s_{i+1} / d_{i+1})
+    * dg`` with ``a = (g - w_i) / (w_{i+1} - w_i)`` and ``dg`` the local grid step, i.e.
+    the value per grid step (same unit as the input when the grid step is close to the
+    pixel step), and variance ``((1 - a)^2 v_i / d_i^2 + a^2 v_{i+1} / d_{i+1}^2) dg^2``
+    (pixels taken as independent; the covariance this creates between neighbouring
+    grid points is not kept). Grid points up to ``extrapolate_px`` pixel steps
     beyond a trace's first or last pixel are extrapolated linearly from the two
     edge pixels; farther ones, and those next to a NaN pixel, are NaN.
 
@@ -196,7 +199,10 @@ def resample_to_grid(spectra, variance, wave_pixel, wave_grid, *, extrapolate_px
     tr = np.arange(n_t)[:, None]
     w0, w1 = wp[tr, idx], wp[tr, idx + 1]
     a = (g[None, :] - w0) / (w1 - w0)
-    out = (1 - a) * s[..., tr, idx] + a * s[..., tr, idx + 1]
-    out_var = (1 - a) ** 2 * v[..., tr, idx] + a ** 2 * v[..., tr, idx + 1]
+    disp = np.gradient(wp, axis=1)
+    dg = np.gradient(g) if g.size > 1 else np.ones(1)
+    b0, b1 = (1 - a) * dg / disp[tr, idx], a * dg / disp[tr, idx + 1]
+    out = b0 * s[..., tr, idx] + b1 * s[..., tr, idx + 1]
+    out_var = b0 ** 2 * v[..., tr, idx] + b1 ** 2 * v[..., tr, idx + 1]
     nan = np.nan if not np.iscomplexobj(out) else np.nan + 0j
     return np.where(inside, out, nan), np.where(inside, out_var, np.nan)

@@ -86,23 +86,32 @@ def test_masked_column_and_nan_policy():
 
 
 def test_resample_linear_exact_and_variance():
-    wp = np.array([np.linspace(2.0e-6, 2.4e-6, 11), np.linspace(2.01e-6, 2.41e-6, 11)])
-    spec = 3.0 + 1e6 * wp                       # linear in wavelength: interpolation exact
+    """Two traces of different dispersion (0.040 and 0.036 um per pixel) seeing the same
+    spectral density f(lambda), linear in wavelength: the per-pixel values are f * d;
+    on a 0.01 um grid both must give f(g) * 0.01 um exactly (linear interpolation of a
+    linear function)."""
+    wp = np.array([2.0e-6 + 0.04e-6 * np.arange(11), 2.01e-6 + 0.036e-6 * np.arange(11)])
+    disp = np.array([[0.04e-6], [0.036e-6]])
+
+    def density(w):
+        return 3.0 + 1e6 * w
+    spec = density(wp) * disp
     var = np.ones_like(spec)
-    grid = np.linspace(2.0e-6, 2.41e-6, 30)
+    grid = np.linspace(2.0e-6, 2.40e-6, 41)
+    dg = 0.01e-6
     out, ov = resample_to_grid(spec[None], var[None], wp, grid, extrapolate_px=0.0)
     inside = (grid >= wp[:, :1]) & (grid <= wp[:, -1:])
-    np.testing.assert_allclose(out[0][inside], (3.0 + 1e6 * grid[None, :] * np.ones((2, 1)))[inside])
+    expect = density(grid)[None, :] * dg * np.ones((2, 1))
+    np.testing.assert_allclose(out[0][inside], expect[inside], rtol=1e-12)
     assert np.isnan(out[0][~inside]).all()
-    # variance of (1-a) s0 + a s1 with unit independent variances: (1-a)^2 + a^2
+    # variance of ((1-a) s0 / d + a s1 / d) dg with unit independent variances
     a = (grid[5] - wp[0, 1]) / (wp[0, 2] - wp[0, 1])
-    assert abs(ov[0, 0, 5] - ((1 - a) ** 2 + a ** 2)) < 1e-12
+    assert abs(ov[0, 0, 5] - ((1 - a) ** 2 + a ** 2) * (dg / 0.04e-6) ** 2) < 1e-12
     outc, _ = resample_to_grid((spec + 1j * spec)[None], var[None], wp, grid, extrapolate_px=0.0)
     np.testing.assert_allclose(outc[0].imag[inside], out[0][inside])
     # half a pixel step of linear extrapolation: still exact for a linear spectrum
     ext, _ = resample_to_grid(spec[None], var[None], wp, grid, extrapolate_px=0.5)
-    step = wp[:, 1] - wp[:, 0]
-    near = (grid >= wp[:, :1] - 0.5 * step[:, None]) & (grid <= wp[:, -1:] + 0.5 * step[:, None])
+    near = (grid >= wp[:, :1] - 0.5 * disp) & (grid <= wp[:, -1:] + 0.5 * disp)
     assert near.sum() > inside.sum()
-    np.testing.assert_allclose(ext[0][near], (3.0 + 1e6 * grid[None, :] * np.ones((2, 1)))[near])
+    np.testing.assert_allclose(ext[0][near], expect[near], rtol=1e-12)
     assert np.isnan(ext[0][~near]).all()
