@@ -408,3 +408,70 @@ def test_scenario_set_up_must_exist(tmp_path):
     bad.write_text((SCENARIO_DIR / "tiny.toml").read_text().replace('setup = "low"', 'setup = "high"'))
     with pytest.raises(ConfigError, match=r"bad\.toml.*set-up 'high'"):
         simulate_night(tmp_path / "n", scenario=bad)
+
+
+def test_photometry_and_contrast_loss_of_the_science_frames(bright_night, instrument):
+    """Inverted science frames against a photometry computed here from the constants:
+    F_i = n_ph(lambda) x area x throughput x <injection_i> x sum_k F_k kappa_k x |dlambda/dx|
+    x DIT, with n_ph from Vega's K zero point (4.5e-10 W m^-2 um^-1, from memory, the value
+    the simulator states) and a lambda^-3 photon slope; and |C_ij| / sqrt(F_i F_j) equals
+    |V_binary| times the truth contrast loss of each frame."""
+    from scipy.special import erf
+    from pipeline.skymodel import MAS, binary_visibility
+    h_planck, c_light = 6.62607015e-34, 299792458.0
+    truth = _truth(bright_night)
+    ch = truth["instrument"]["channels"]["sci-low-joint"]
+    det = truth["instrument"]["detectors"]["science"]
+    sci = _by_kind(bright_night, "science")[0]
+    tf = truth["files"][sci.name]
+    dit = fits.getheader(sci)["SCDIT"]
+    dark = [f for f in _by_kind(bright_night, "dark") if fits.getheader(f)["SCDIT"] == dit][0]
+    frames = (fits.getdata(sci, "SCI_PIX").astype(float)
+              - fits.getdata(dark, "SCI_PIX").astype(float).mean(0))
+    x = 12                                                   # a column near 2.2 um
+    resp = np.array(det["pixel_response"])[:, x]
+    ty, tsig = np.array(ch["trace_y_px"])[:, x], np.array(ch["trace_sigma_px"])[:, x]
+    flux = np.zeros((frames.shape[0], 24))
+    for k in range(24):
+        rows = np.arange(int(round(ty[k])) - 3, int(round(ty[k])) + 4)
+        edges = np.r_[rows - 0.5, rows[-1] + 0.5]
+        prof = np.diff(0.5 * (1 + erf((edges - ty[k]) / (np.sqrt(2) * tsig[k]))))
+        good = resp[rows] > 0
+        flux[:, k] = (frames[:, rows[good], x] / resp[rows[good]]).sum(1) / prof[good].sum()
+    flux *= det["gain_e_per_adu"]
+    t, c, th = (np.array(ch[n])[0][..., x] for n in ("transmission", "contrast", "phase_shift_rad"))
+    m = np.zeros((24, 16))
+    for k, (i, j) in enumerate(instrument.combiner.output_pair):
+        b = instrument.combiner.output_baseline[k]
+        a = 2 * np.sqrt(t[k, i] * t[k, j]) * c[k]
+        m[k, [i, j]] = t[k, i], t[k, j]
+        m[k, 4 + b], m[k, 10 + b] = a * np.cos(th[k]), -a * np.sin(th[k])
+    sol = np.linalg.lstsq(m, flux.T, rcond=None)[0]
+    f, coh = sol[:4], sol[4:10] + 1j * sol[10:16]            # (telescope, frame), (baseline, frame)
+    lam = np.array(ch["wave_pixel_m"])[:, x].mean()
+    dldx = abs(np.gradient(np.array(ch["wave_pixel_m"]).mean(0))[x])
+    n_ph = 4.5e-10 * 1e6 * lam / (h_planck * c_light) * (lam / 2.2e-6) ** -3
+    sc = load_scenario(bright_night.parent / "bright.toml")
+    tg = sc.targets[tf["object"]]
+    fwhm = instrument.fibre_fwhm_mas_at_2p2um * lam / 2.2e-6
+    x1, y1 = tf["primary_offset_mas"]
+    x2, y2 = x1 + tf["companion_dra_mas"], y1 + tf["companion_ddec_mas"]
+    kappa = (np.exp(-4 * np.log(2) * (x1 ** 2 + y1 ** 2) / fwhm ** 2)
+             + tf["flux_ratio"] * np.exp(-4 * np.log(2) * (x2 ** 2 + y2 ** 2) / fwhm ** 2))
+    expected = (n_ph * 10 ** (-0.4 * tg.kmag) * np.pi * (instrument.telescope_diameter_m / 2) ** 2
+                * sc.photometry["throughput"] * np.array(tf["mean_injection"]) * kappa * dldx * dit)
+    # photon noise ~1e-3; the pixel's bandpass average of the lambda^-3 slope, the fibre
+    # coupling and the transmission versus their values at the mean wavelength: < 1 %
+    np.testing.assert_allclose(f.mean(1), expected, rtol=0.02)
+    vis = binary_visibility(
+        np.array(tf["uvw_mid_m"])[:, 0], np.array(tf["uvw_mid_m"])[:, 1], lam,
+        dx_rad=tf["companion_dra_mas"] * MAS, dy_rad=tf["companion_ddec_mas"] * MAS,
+        flux_ratio=tf["flux_ratio"], x1_rad=x1 * MAS, y1_rad=y1 * MAS,
+        bandwidth_m=np.array(ch["bandwidth_pixel_m"])[:, x].mean(),
+        fibre_fwhm_rad_at_2p2um=instrument.fibre_fwhm_mas_at_2p2um * MAS)
+    bl = np.array(instrument.combiner.baselines)
+    measured = np.abs(coh) / np.sqrt(f[bl[:, 0]] * f[bl[:, 1]])          # (baseline, frame)
+    loss = np.array(tf["frame_coherence_2p2um"]).T                      # (baseline, frame)
+    # contrast loss tabulated at 2.2 um, column at ~2.21 um: the loss scales as
+    # exp(-2 pi^2 s^2 / lambda^2), a < 0.5 % change; smearing-envelope approximation ~1 %
+    np.testing.assert_allclose(measured, np.abs(vis)[:, None] * loss, rtol=0.03)
