@@ -475,3 +475,34 @@ def test_photometry_and_contrast_loss_of_the_science_frames(bright_night, instru
     # contrast loss tabulated at 2.2 um, column at ~2.21 um: the loss scales as
     # exp(-2 pi^2 s^2 / lambda^2), a < 0.5 % change; smearing-envelope approximation ~1 %
     np.testing.assert_allclose(measured, np.abs(vis)[:, None] * loss, rtol=0.03)
+
+
+def test_residual_path_statistics(rng):
+    """AR(1) residuals: per-baseline rms as requested, autocorrelation exp(-lag/tau) (the
+    AR(1) autocorrelation function); a fringe jump shifts one telescope by the FT
+    wavelength for its interval."""
+    from pipeline.simulate.turbulence import injection, residuals
+    knobs = dict(load_scenario("tiny").tracking, residual_rms_nm=200.0, corr_ms=20.0)
+    dt = 2.5e-4
+    r, events = residuals(rng, 400_000, dt, knobs, 2.2e-6)            # 100 s, no events
+    assert events == []
+    d = r[:, 3] - r[:, 0]
+    # 100 s / 20 ms ~ 5000 correlation times: rms known to ~2 %, 5 % tolerance
+    assert d.std() == pytest.approx(200e-9, rel=0.05)
+    lag = int(0.02 / dt)
+    acf = np.corrcoef(d[:-lag], d[lag:])[0, 1]
+    assert acf == pytest.approx(np.exp(-1), abs=0.05)
+    jumpy = dict(knobs, jump_rate_per_min=60.0, jump_duration_s=[0.5, 0.5])
+    r2, ev = residuals(np.random.default_rng(4), 40_000, dt, jumpy, 2.2e-6)   # 10 s
+    jumps = [e for e in ev if e["kind"] == "jump"]
+    assert jumps and all(abs(e["offset_m"]) == 2.2e-6 for e in jumps)
+    e = jumps[0]
+    inside = slice(int(e["t_start"] / dt) + 1, int(e["t_end"] / dt) - 1)
+    others = [j for j in jumps[1:] if j["telescope"] == e["telescope"]
+              and j["t_start"] < e["t_end"] and j["t_end"] > e["t_start"]]
+    if not others:
+        # mean of the shifted stretch: the jump plus 200/sqrt(2) nm AR(1) noise
+        assert r2[inside, e["telescope"]].mean() == pytest.approx(e["offset_m"], abs=0.4e-6)
+    rho = injection(rng, 400_000, dt, dict(mean=0.45, log_sigma=0.25, corr_ms=40.0))
+    # lognormal with the -s^2/2 shift keeps the mean; 100 s / 40 ms: ~2 % precision
+    np.testing.assert_allclose(rho.mean(0), 0.45, rtol=0.05)
