@@ -1,0 +1,202 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Spectral and combiner calibration of the tiny simulated night against its truth.json.
+
+The flat, wavecal and combiner stages run through the engine on the `tiny` night
+(low resolution, joint polarisation). Truth comes from truth.json (docs/truth.md):
+per-pixel effective wavelengths and bandwidths, trace centres and widths, and the
+chromatic laws of the true combiner, which this file evaluates itself at the
+product's wavelengths. The inverse-model check synthesises frames of an
+unresolved source with an independent forward model written here from the
+combiner equation of DEVELOPERS.md.
+
+The tiny night's lamp exposures are short (3 single-beam frames of 20 ms), so its
+transmissions are photon-limited at ~0.5% per wavelength: tolerances below are set
+from that noise and say so; the demo night's figures are quoted in the stage notes.
+"""
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+from astropy.io import fits
+
+from pipeline.engine import reduce
+from pipeline.errors import BadInput, MissingCalibration
+from pipeline.lampcal import flat_products, frame_opd, require_beams
+from pipeline.rawio import RawExposure
+from pipeline.store import ProductView, products_of
+from recipes import combiner, dark, flat, inventory, wavecal
+
+LABEL = "sci-low-joint"
+
+
+@pytest.fixture(scope="module")
+def cal(tiny_night, tmp_path_factory):
+    work = tmp_path_factory.mktemp("speccal")
+    summary = reduce(tiny_night, work, stages=[inventory.STAGE, dark.STAGE, flat.STAGE,
+                                               wavecal.STAGE, combiner.STAGE],
+                     scheduler="synchronous", progress=False)
+    assert not summary.failed, summary.failed
+    truth = json.loads((Path(tiny_night) / "truth.json").read_text())
+
+    def view(stage, label):
+        return ProductView(products_of(work, stage, label)[-1])
+    return Path(tiny_night), work, truth, view
+
+
+def _laws(law, wave):
+    """The true combiner's laws (docs/truth.md, combiner_laws) at wave (output, n)."""
+    xi = (wave - 2.2e-6) / 0.2e-6
+    amp, tc = np.array(law["amp"]), np.array(law["t_chromatic"])
+    ph, thn = np.array(law["theta_poly_rad"]), np.array(law["theta_nominal_rad"])
+    t = np.zeros((24, 4, wave.shape[-1]))
+    pairs = np.repeat([[0, 1], [0, 2], [0, 3], [1, 2], [1, 3], [2, 3]], 4, axis=0)
+    for k, (i, j) in enumerate(pairs):
+        for a, tel in ((0, i), (1, j)):
+            t[k, tel] = law["t_nominal"] * amp[k, a] * (1 + tc[k, a, 0] * xi[k]
+                                                        + tc[k, a, 1] * xi[k] ** 2)
+    theta = thn[:, None] + ph[:, :1] + ph[:, 1:2] * xi + ph[:, 2:3] * xi ** 2
+    c = np.clip(np.array(law["contrast_c0"])[:, None] + np.array(law["contrast_c1"])[:, None] * xi,
+                *law["contrast_clip"])
+    return t, theta, c, pairs
+
+
+def test_traces_match_truth(cal):
+    _, _, truth, view = cal
+    fl = view("flat", LABEL)
+    tr = truth["instrument"]["channels"][LABEL]
+    # 4 flat frames of ~2000 e- per pixel with 2% pixel response: per-column centres to
+    # ~0.01 px; 0.05 px (a twentieth of the profile width) bounds the smooth law.
+    assert np.max(np.abs(fl["trace_y"] - np.array(tr["trace_y_px"]))) < 0.05
+    assert np.max(np.abs(fl["profile_sigma"] / np.array(tr["trace_sigma_px"]) - 1)) < 0.04
+    assert fl["valid"].mean() > 0.99
+
+
+def test_wavelengths_and_bandwidths_match_truth(cal):
+    _, _, truth, view = cal
+    for label, goal in ((LABEL, 1e-3), ("ft", 1e-3)):   # goal at R~20: project brief
+        wc = view("wavecal", label)
+        tr = truth["instrument"]["channels"][label]
+        rel = wc["wave_pixel"] / np.array(tr["wave_pixel_m"]) - 1
+        assert np.sqrt(np.mean(rel ** 2)) < goal, label
+        # bandwidths within 5% (project brief) of the truth's FWHM per pixel
+        bw = wc["bandwidth_pixel"] / np.array(tr["bandwidth_pixel_m"]) - 1
+        assert np.max(np.abs(bw)) < 0.05, label
+        grid = wc["wave_grid"]
+        assert np.all(np.diff(grid) > 0) and grid.size >= 0.8 * rel.shape[1]
+
+
+def test_combiner_matches_truth(cal):
+    _, _, truth, view = cal
+    cb = view("combiner", LABEL)
+    wave = np.broadcast_to(cb["wave"], (24, cb["wave"].size))
+    t, theta, c, pairs = _laws(truth["instrument"]["channels"][LABEL]["combiner_laws"][0], wave)
+    share = t / t.sum(axis=0, keepdims=True)          # the product's documented normalisation
+    k = np.arange(24)
+    for a in (0, 1):
+        rel = cb["transmission"][0][k, pairs[:, a]] / share[k, pairs[:, a]] - 1
+        # photon noise of 3 x 20 ms single-beam frames: ~0.6% per value; RMS within 1%,
+        # no value beyond 4%. (Demo night: see the stage notes.)
+        assert np.sqrt(np.mean(rel ** 2)) < 0.01 and np.max(np.abs(rel)) < 0.04
+    rel_c = cb["contrast"][0] / c - 1
+    assert np.sqrt(np.mean(rel_c ** 2)) < 0.01 and np.max(np.abs(rel_c)) < 0.025
+    dphi = np.rad2deg(np.angle(np.exp(1j * (cb["phase_shift"][0] - theta))))
+    assert np.max(np.abs(dphi)) < 1.0                  # project brief: 1 deg
+    assert np.all(cb["condition"][0] < 5)              # near-ideal ABCD: ~2
+    np.testing.assert_allclose(cb["phase_closure"][0], 0, atol=1e-9)
+
+
+def _synthesise(t, theta, c, pairs, flux):
+    """Unresolved source, no atmosphere: C_ij = sqrt(F_i F_j), V = 1 (DEVELOPERS.md)."""
+    inten = np.zeros((24, t.shape[-1]))
+    for k, (i, j) in enumerate(pairs):
+        coh = np.sqrt(flux[i] * flux[j])
+        inten[k] = (t[k, i] * flux[i] + t[k, j] * flux[j]
+                    + 2 * np.sqrt(t[k, i] * t[k, j]) * c[k] * np.real(coh * np.exp(1j * theta[k])))
+    return inten
+
+
+def _visibility(p2vm, inten):
+    x = np.einsum("wuk,kw->uw", p2vm, inten)
+    f = x[:4]
+    coh = x[4:10] + 1j * x[10:]
+    base = [(0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3)]
+    return np.stack([coh[b] / np.sqrt(f[i] * f[j]) for b, (i, j) in enumerate(base)])
+
+
+def _nominal_p2vm(wave_n, pairs):
+    from pipeline.numerics.combiner_model import build_v2pm, weighted_pinv
+    t = np.zeros((1, 24, 4, wave_n))
+    for k, (i, j) in enumerate(pairs):
+        t[0, k, [i, j]] = 1 / 12                         # calib/instrument.toml nominal
+    th = np.deg2rad(np.tile([0.0, 90.0, 180.0, 270.0], 6))[None, :, None] * np.ones((1, 1, wave_n))
+    return weighted_pinv(build_v2pm(t, np.ones((1, 24, wave_n)), th, pairs))[0]
+
+
+@pytest.mark.parametrize("label", [LABEL, "ft"])
+def test_inverse_model_gives_unit_visibility(cal, label):
+    _, _, truth, view = cal
+    cb = view("combiner", label)
+    tr = truth["instrument"]["channels"][label]
+    if label == "ft":          # calibrated per pixel: each output at its own wavelength
+        wave = np.array(tr["wave_pixel_m"])
+    else:
+        wave = np.broadcast_to(cb["wave"], (24, cb["wave"].size))
+    t, theta, c, pairs = _laws(tr["combiner_laws"][0], wave)
+    flux = np.array([1.0e5, 0.8e5, 1.2e5, 0.9e5])[:, None] * np.ones((1, wave.shape[1]))
+    inten = _synthesise(t, theta, c, pairs, flux)
+    vis = _visibility(cb["p2vm"][0], inten)
+    amp_err = np.abs(np.abs(vis) - 1)
+    ph_err = np.abs(np.rad2deg(np.angle(vis)))
+    # Project brief: |V| = 1 within 1% and phase 0 within 1 deg. On the tiny night the
+    # transmissions and contrasts carry ~0.6% photon noise (3 single-beam frames), which
+    # the ABCD inversion turns into ~0.7% / ~0.4 deg RMS: the RMS must meet the goals,
+    # the worst of 132 values may reach 2.5 sigma-ish excursions (2.5%, 1.5 deg).
+    assert np.sqrt(np.mean(amp_err ** 2)) < 0.01 and amp_err.max() < 0.025
+    assert np.sqrt(np.mean(ph_err ** 2)) < 0.6 and ph_err.max() < 1.5
+    nominal = _visibility(_nominal_p2vm(wave.shape[1], pairs), inten)
+    # the nominal model ignores +-20% transmissions, 0.8-0.98 contrasts and ~10 deg phase
+    # errors: several times worse
+    assert np.sqrt(np.mean((np.abs(nominal) - 1) ** 2)) > 3 * np.sqrt(np.mean(amp_err ** 2))
+    assert np.sqrt(np.mean(np.angle(nominal) ** 2)) > 3 * np.deg2rad(np.sqrt(np.mean(ph_err ** 2)))
+
+
+def test_frame_opd_is_the_exposure_mean():
+    """A linear ramp sampled at 1 kHz: the exposure mean is the value at mid-exposure,
+    whatever the phase of the frame clock against the metrology clock."""
+    t = np.arange(0, 1.0, 1e-3)
+    path = np.zeros((t.size, 4))
+    path[:, 3] = 40e-6 * (t - 0.5)
+    start = np.array([0.1003, 0.2, 0.33331])
+    opd, span = frame_opd((start, np.full(3, 0.02)), t, path, [(0, 3)])
+    np.testing.assert_allclose(opd[:, 0], 40e-6 * (start + 0.01 - 0.5), atol=1e-15)
+    np.testing.assert_allclose(span[:, 0], 40e-6 * 0.02, rtol=1e-9)
+
+
+def test_bad_calibration_frames_are_named(cal, tmp_path):
+    night, work, _, view = cal
+    flats = sorted(night.glob("*_flat_*.fits"))
+    beams = [RawExposure(p) for p in sorted(night.glob("*_lamp-beam_*.fits"))]
+    dark_view = ProductView(products_of(work, "dark", f"{LABEL}-dit0.02")[-1])
+    from pipeline.instrument import load_instrument
+    inst = load_instrument()
+    # a missing single-beam exposure
+    with pytest.raises(MissingCalibration, match=r"beam\(s\) \[3\]"):
+        require_beams([b for b in beams if int(b.header["LAMPTEL"]) != 3])
+    # wrong set-up
+    with pytest.raises(BadInput, match="does not match") as err:
+        flat_products([RawExposure(flats[0])], dark_view, instrument=inst,
+                      setup_name="medium", polmode="joint")
+    assert err.value.path == str(flats[0])
+    # a saturated flat
+    bad = tmp_path / flats[0].name
+    with fits.open(flats[0]) as hdul:
+        data = hdul["SCI_PIX"].data.astype(np.int64)
+        data[:, 5:200, :] = 65535
+        hdul["SCI_PIX"].data = data.astype(np.uint16)
+        hdul.writeto(bad)
+    with pytest.raises(BadInput, match="saturated") as err:
+        flat_products([RawExposure(bad)], dark_view, instrument=inst, setup_name="low",
+                      polmode="joint")
+    assert err.value.path == str(bad)
