@@ -5,7 +5,7 @@ A scenario lists the targets, the on-sky sequence and the knobs of the forward
 model (atmosphere, fringe tracking, injection, metrology, instrument errors,
 lamps). Afternoon calibrations (darks for every DIT used, flat, single-beam
 lamp frames and the delay scan of every set-up used) are added by
-:func:`pipeline.simulate.night.plan_night` from ``[calibration]``.
+:func:`pipeline.simulate.plan.plan_night` from ``[calibration]``.
 Every field is documented in ``docs/truth.md``.
 """
 
