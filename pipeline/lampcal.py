@@ -292,18 +292,23 @@ def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pi
     ok = np.isfinite(scan_intensity)
     fill = np.where(ok, scan_intensity, np.nanmedian(np.where(ok, scan_intensity, np.nan), 0))
     wave_pixel, bandwidth_pixel = np.asarray(wave_pixel), np.asarray(bandwidth_pixel)
+    max_opd = window_coherence * wave_pixel ** 2 / bandwidth_pixel
     z, z_var, dc = fringe_phasor(np.nan_to_num(fill), opd, wave_pixel, bandwidth_pixel,
-                                 opd_span=span,
-                                 max_opd=window_coherence * wave_pixel ** 2 / bandwidth_pixel)
+                                 opd_span=span, max_opd=max_opd)
+    # model residuals on the frames near zero OPD on every baseline (farther out, the
+    # chromatic phase inside a channel makes the per-pixel model only approximate)
+    near = np.all(np.abs(np.broadcast_to(opd, scan_intensity.shape)) <= max_opd, axis=(1, 2))
+    near = near if near.any() else np.ones(near.shape, bool)
     if resample:
         def grid(a, v=None):
             v = np.zeros(a.shape) if v is None else v
             return resample_to_grid(a, v, wave_pixel, wave_grid)
         beam = grid(beam_flux)[0]
         zg, dcg = grid(z)[0], grid(dc)[0]
-        intens, ivar = grid(scan_intensity, scan_var)
+        intens, ivar = grid(scan_intensity[near], scan_var[near])
     else:
-        beam, zg, dcg, intens, ivar = beam_flux, z, dc, scan_intensity, scan_var
+        beam, zg, dcg = beam_flux, z, dc
+        intens, ivar = scan_intensity[near], scan_var[near]
     t = cm.transmissions(_to_pol_output(beam, n_pol))
     contrast, phase, lamp = cm.contrast_and_phase(_to_pol_output(zg, n_pol),
                                                   _to_pol_output(dcg, n_pol), t, comb.output_pair)
@@ -325,7 +330,8 @@ def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pi
             "output_weights": Array(weights, ("pol", "wave", "output"), "",
                                     "relative inverse variances used in p2vm"),
             "lamp_flux": Array(lamp, ("pol", "telescope", "wave"), "e-", "scan lamp F_i"),
-            "model_chi2": Array(chi2, pw, "", "QC: reduced chi2 of the model on the scan"),
+            "model_chi2": Array(chi2, pw, "", "QC: reduced chi2 of the model on scan frames "
+                                              "near zero OPD"),
             "residual_rms": Array(np.sqrt(np.nanmean(res ** 2, axis=0)), pow_, "e-", "QC"),
             "phase_closure": Array(closure, pb, "rad", "QC: 0 for an ordered ABCD set"),
             "phase_imbalance": Array(imbalance, pb, "", "QC: |mean exp(i theta)|"),

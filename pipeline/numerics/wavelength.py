@@ -300,21 +300,41 @@ def fringe_phasor(intensity, opd, wave, bandwidth, *, opd_centre=0.0, opd_span=N
     pshape = y.shape[1:]
     n_s = y.shape[0]
     y = y.reshape(n_s, -1)
-    o = np.broadcast_to(np.asarray(opd, float), (n_s, *pshape)).reshape(n_s, -1)
-    lam = np.broadcast_to(np.asarray(wave, float), pshape).reshape(-1)
-    bw = np.broadcast_to(np.asarray(bandwidth, float), pshape).reshape(-1)
-    oc = np.broadcast_to(np.asarray(opd_centre, float), pshape).reshape(-1)
+    n_p = y.shape[1]
+
+    def flat(a, per_sample):
+        a = np.asarray(a, float)
+        if per_sample:
+            return np.broadcast_to(a, (n_s, *pshape)).reshape(n_s, -1)
+        return np.broadcast_to(a, pshape).reshape(-1)
+    o = flat(opd, True)
+    span = None if opd_span is None else flat(opd_span, True)
+    var = None if variance is None else flat(variance, True)
+    lam, bw, oc = flat(wave, False), flat(bandwidth, False), flat(opd_centre, False)
+    mo = None if max_opd is None else flat(max_opd, False)
+    z = np.empty(n_p, complex)
+    z_var, dc = np.empty(n_p), np.empty(n_p)
+    chunk = max(1, 4_000_000 // (4 * n_s))       # bounded memory over pixels
+    for p0 in range(0, n_p, chunk):
+        sl = slice(p0, min(n_p, p0 + chunk))
+        z[sl], z_var[sl], dc[sl] = _phasor_chunk(
+            y[:, sl], o[:, sl], None if span is None else span[:, sl],
+            None if var is None else var[:, sl], lam[sl], bw[sl], oc[sl],
+            None if mo is None else mo[sl])
+    return z.reshape(pshape), z_var.reshape(pshape), dc.reshape(pshape)
+
+
+def _phasor_chunk(y, o, span, variance, lam, bw, oc, max_opd):
+    n_s = y.shape[0]
     env = gaussian_envelope(o - oc, lam, bw)
-    if opd_span is not None:
-        span = np.broadcast_to(np.asarray(opd_span, float), (n_s, *pshape)).reshape(n_s, -1)
+    if span is not None:
         env = env * np.sinc(span / lam)
     ph = 2 * np.pi * o / lam
     omax = np.maximum(np.abs(o).max(0), 1e-30)
     basis = np.stack([np.ones_like(o), o / omax, env * np.cos(ph), env * np.sin(ph)], -1)
-    w = np.ones_like(y) if variance is None else 1 / np.broadcast_to(
-        np.asarray(variance, float), (n_s, *pshape)).reshape(n_s, -1)
+    w = np.ones_like(y) if variance is None else 1 / variance
     if max_opd is not None:
-        w = w * (np.abs(o) <= np.broadcast_to(np.asarray(max_opd, float), pshape).reshape(-1))
+        w = w * (np.abs(o) <= max_opd)
     lhs = np.einsum("sp,spi,spj->pij", w, basis, basis)
     rhs = np.einsum("sp,spi,sp->pi", w, basis, y)
     cov = np.linalg.inv(lhs)
@@ -324,9 +344,7 @@ def fringe_phasor(intensity, opd, wave, bandwidth, *, opd_centre=0.0, opd_span=N
         n_used = (w > 0).sum(0)
         cov = cov * (np.sum(w * res ** 2, 0) / np.maximum(n_used - 4, 1))[:, None, None]
     # Re[Z e^{-i ph}] = Re Z cos(ph) + Im Z sin(ph)
-    z = sol[:, 2] + 1j * sol[:, 3]
-    z_var = 0.5 * (cov[:, 2, 2] + cov[:, 3, 3])
-    return z.reshape(pshape), z_var.reshape(pshape), sol[:, 0].reshape(pshape)
+    return sol[:, 2] + 1j * sol[:, 3], 0.5 * (cov[:, 2, 2] + cov[:, 3, 3]), sol[:, 0]
 
 
 def fit_dispersion_law(wave_measured, wave_err, *, deg: int = 3, clip: float = 4.0,
