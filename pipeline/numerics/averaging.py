@@ -34,7 +34,8 @@ frames valid on that baseline):
 Errors: standard deviation over ``n_boot`` bootstrap resamples of the frames
 (Efron & Tibshirani 1993, An Introduction to the Bootstrap, Chapman & Hall),
 drawn from ``numpy.random.default_rng(seed)``; phases are wrapped about the
-full-sample value first. The covariances between wavelengths of V2, of the
+full-sample value first; the variances are scaled by n / (n - 1) for n frames
+used (the bootstrap's small-sample bias for means). The covariances between wavelengths of V2, of the
 referenced phase and of the closure phase are returned as well (a common
 residual piston makes the phases strongly correlated across the band).
 
@@ -242,22 +243,31 @@ def average_exposure(coherent, coherent_var, flux, *, frame_valid=None, contrast
     t3amp = np.where(nt > 0, t3amp, np.nan)
     t3phi = np.where(nt > 0, t3phi, np.nan)
 
-    def err(x, phase=False):
-        d = x[1:] - x[0]
-        return np.std(_wrap(d) if phase else d, axis=0, ddof=1)
+    # the bootstrap variance of a mean of n frames is (n - 1) / n times the usual
+    # estimate s^2 / n (Efron & Tibshirani 1993, ch. 5): scale it back
+    def inflate(n):
+        return np.where(n > 1, n / np.maximum(n - 1, 1), np.nan)
 
-    def cov(x, phase=False):
+    g_base, g_tri, g_tel = inflate(nv[0]), inflate(nt[0]), inflate(_sums(weights, fw)[0])
+
+    def err(x, g, phase=False):
+        d = x[1:] - x[0]
+        return np.std(_wrap(d) if phase else d, axis=0, ddof=1) * np.sqrt(g)
+
+    def cov(x, g, phase=False):
         d = x[1:] - x[0]
         if phase:
             d = _wrap(d)
-        d = d - d.mean(axis=0)
+        d = (d - d.mean(axis=0)) * np.sqrt(g)
         return np.einsum("bpkw,bpkv->pkwv", d, d) / (n_boot - 1)
 
     return ExposureAverage(
-        vis2=v2[0], vis2_err=err(v2), vis2_cov=cov(v2),
-        t3phi=t3phi[0], t3phi_err=err(t3phi, True), t3phi_cov=cov(t3phi, True),
-        t3amp=t3amp[0], t3amp_err=err(t3amp),
-        visamp=visamp[0], visamp_err=err(visamp),
-        visphi=visphi[0], visphi_err=err(visphi, True), visphi_cov=cov(visphi, True),
-        flux=fl[0], flux_err=err(fl),
+        vis2=v2[0], vis2_err=err(v2, g_base), vis2_cov=cov(v2, g_base),
+        t3phi=t3phi[0], t3phi_err=err(t3phi, g_tri, True),
+        t3phi_cov=cov(t3phi, g_tri, True),
+        t3amp=t3amp[0], t3amp_err=err(t3amp, g_tri),
+        visamp=visamp[0], visamp_err=err(visamp, g_base),
+        visphi=visphi[0], visphi_err=err(visphi, g_base, True),
+        visphi_cov=cov(visphi, g_base, True),
+        flux=fl[0], flux_err=err(fl, g_tel),
         n_valid=valid.sum(axis=0).astype(int), n_boot=int(n_boot), seed=int(seed))
