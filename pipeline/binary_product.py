@@ -85,8 +85,7 @@ def binary_product(view, instrument, *, exposure: str, search_radius_mas: float 
         obs.uvw, obs.wave, dra_mas=res.dra, ddec_mas=res.ddec, flux_ratio=res.flux_ratio,
         flux_slope=res.flux_slope, primary_dra_mas=p["primary_dra"]["value"],
         primary_ddec_mas=p["primary_ddec"]["value"],
-        diameter1_mas=fit_kw.get("diameters_mas", (0, 0))[0],
-        diameter2_mas=fit_kw.get("diameters_mas", (0, 0))[1], bandwidth_m=obs.bandwidth,
+        diameter1_mas=res.diameter1, diameter2_mas=res.diameter2, bandwidth_m=obs.bandwidth,
         fibre_fwhm_mas=fibre)
     a = view.attrs
     out = {k: v for k, v in to_jsonable(res).items() if k != "params_json"}

@@ -18,8 +18,10 @@ class BinaryParams:
     step_fraction: float = 0.25      # grid step / (lambda_min / B_max), in (0, 0.25]
     flux_ratio_max: float = 1.5      # largest flux ratio searched (>1 shows mirror solutions)
     fit_slope: bool = False          # fit a power-law spectral slope of the flux ratio
-    diameter1_mas: float = 0.0       # mas, fixed uniform-disk diameter of the primary
-    diameter2_mas: float = 0.0       # mas, fixed uniform-disk diameter of the companion
+    diameter1_mas: float = 0.0       # mas, uniform-disk diameter of the primary (or start)
+    diameter2_mas: float = 0.0       # mas, uniform-disk diameter of the companion (or start)
+    fit_diameter1: bool = False      # fit the primary's diameter
+    fit_diameter2: bool = False      # fit the companion's diameter
     use_phases: bool = True          # fit calibrated referenced phases (primary offset)
     n_start: int = 5                 # grid minima refined with lmfit
     n_boot: int = 50                 # bootstrap refits (0 = covariance errors only)
@@ -51,6 +53,7 @@ def run(inputs, params: BinaryParams) -> dict:
     p = params
     fit_kw = dict(step_fraction=p.step_fraction, flux_ratio_max=p.flux_ratio_max,
                   fit_slope=p.fit_slope, diameters_mas=(p.diameter1_mas, p.diameter2_mas),
+                  fit_diameters=(p.fit_diameter1, p.fit_diameter2),
                   n_start=p.n_start, search_max_channels=p.search_max_channels,
                   ambiguous_dchi2=p.ambiguous_dchi2,
                   chi2_red_range=(p.chi2_red_min, p.chi2_red_max))

@@ -132,6 +132,10 @@ class BinaryFitResult:
     primary_ddec: float
     primary_dra_err: float
     primary_ddec_err: float
+    diameter1: float                      # mas, uniform-disk diameters (fitted or fixed)
+    diameter2: float
+    diameter1_err: float                  # NaN when fixed
+    diameter2_err: float
     sep_pa: SepPA
     ellipse: ErrorEllipse
     chi2: float
@@ -210,7 +214,19 @@ def _primary_grid(obs, params, ch, *, step, radius, fibre_fwhm_mas):
     return float(x1[best]), float(y1[best])
 
 
-def _params(dra, ddec, ratio, *, radius, ratio_max, fit_slope, has_phase):
+def _distinct(fits, min_dist):
+    """Fits sorted by chi-square, dropping any within ``min_dist`` (mas) of a better one."""
+    kept = []
+    for f in sorted(fits, key=lambda f: f.chisqr):
+        x, y = f.params["dra"].value, f.params["ddec"].value
+        if all(np.hypot(x - k.params["dra"].value, y - k.params["ddec"].value) > min_dist
+               for k in kept):
+            kept.append(f)
+    return kept
+
+
+def _params(dra, ddec, ratio, *, radius, ratio_max, fit_slope, has_phase, diameters,
+            fit_diameters):
     import lmfit
     p = lmfit.Parameters()
     p.add("dra", value=dra, min=-2 * radius, max=2 * radius)
@@ -219,6 +235,9 @@ def _params(dra, ddec, ratio, *, radius, ratio_max, fit_slope, has_phase):
     p.add("flux_slope", value=0.0, vary=fit_slope, min=-10, max=10)
     p.add("primary_dra", value=0.0, vary=has_phase, min=-radius, max=radius)
     p.add("primary_ddec", value=0.0, vary=has_phase, min=-radius, max=radius)
+    for k in (0, 1):
+        p.add(f"diameter{k + 1}", value=float(diameters[k]), vary=bool(fit_diameters[k]),
+              min=0.0, max=max(100.0, 2 * float(diameters[k])))
     return p
 
 
@@ -229,7 +248,8 @@ def _refine(residual, start):
 
 def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_mas: float,
                step_fraction: float = 0.25, flux_ratios=None, flux_ratio_max: float = 1.5,
-               fit_slope: bool = False, diameters_mas=(0.0, 0.0), n_start: int = 5,
+               fit_slope: bool = False, diameters_mas=(0.0, 0.0), fit_diameters=(False, False),
+               n_start: int = 5,
                n_boot: int = 50, search_max_channels: int = 32, ambiguous_dchi2: float = 10.0,
                chi2_red_range=(0.25, 3.0), bootstrap: Literal["auto", "channels", "none"] = "auto",
                seed: int = 0) -> BinaryFitResult:
@@ -246,7 +266,10 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
     flux_ratio_max : float, largest flux ratio searched (> 1 lets the search see the
         mirror solution of near-equal binaries)
     fit_slope : bool, fit the flux ratio's spectral index
-    diameters_mas : (float, float), fixed uniform-disk diameters of primary, companion
+    diameters_mas : (float, float), uniform-disk diameters of primary, companion, mas
+        (fixed values, or starting values of the refinement; the grid search treats
+        both stars as points)
+    fit_diameters : (bool, bool), fit the primary's / the companion's diameter
     n_start : int, number of grid minima refined
     n_boot : int, bootstrap realisations (0: none)
     search_max_channels : int, channels (evenly spread) used by the grid search
@@ -278,11 +301,14 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
     nw = len(obs.wave)
     ch = np.unique(np.linspace(0, nw - 1, min(nw, search_max_channels)).round().astype(int))
     bw = None if obs.bandwidth is None else np.asarray(obs.bandwidth)[ch]
-    c2 = grid_chi2(obs.vis2[..., ch], obs.vis2_err[..., ch], obs.t3phi[..., ch],
+    # With diameters to fit, the grid uses closure phases only: a resolved star's V2 loss,
+    # unknown yet, would otherwise pull the search towards a bright close companion.
+    e2 = obs.vis2_err[..., ch] * (np.nan if any(fit_diameters) else 1.0)
+    c2 = grid_chi2(obs.vis2[..., ch], e2, obs.t3phi[..., ch],
                    obs.t3phi_err[..., ch], uvw_mean, np.asarray(obs.wave)[ch],
                    dra_mas=xx[inside], ddec_mas=yy[inside], flux_ratios=ratios, bandwidth_m=bw,
-                   fibre_fwhm_mas=fibre_fwhm_mas, baselines=obs.baselines,
-                   triangles=obs.triangles)
+                   fibre_fwhm_mas=fibre_fwhm_mas, diameters_mas=diameters_mas,
+                   baselines=obs.baselines, triangles=obs.triangles)
     chi2_map = np.full(xx.shape, np.nan)
     chi2_map[inside] = c2.min(1)
     ratio_map = np.full(xx.shape, np.nan)
@@ -290,11 +316,11 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
     iy, ix = _local_minima(chi2_map, n_start)
     minima = np.column_stack([gx[ix], gy[iy], chi2_map[iy, ix]])
 
-    kw = dict(radius=search_radius_mas, ratio_max=flux_ratio_max, fit_slope=fit_slope)
-    rkw = dict(fibre_fwhm_mas=fibre_fwhm_mas, diameters=diameters_mas, vis2=obs.vis2,
-               t3phi=obs.t3phi, weight=np.ones(nw))
+    kw = dict(radius=search_radius_mas, ratio_max=flux_ratio_max, fit_slope=fit_slope,
+              diameters=diameters_mas, fit_diameters=fit_diameters)
+    rkw = dict(fibre_fwhm_mas=fibre_fwhm_mas, vis2=obs.vis2, t3phi=obs.t3phi, weight=np.ones(nw))
     residual, ndata = make_residual(obs, visphi=obs.visphi, **rkw)
-    nfree = 3 + int(fit_slope) + 2 * int(obs.has_phase)
+    nfree = 3 + int(fit_slope) + 2 * int(obs.has_phase) + int(sum(map(bool, fit_diameters)))
     if ndata <= nfree:
         raise FitFailed("binary fit", n_points=ndata, n_free=nfree)
     # Stage 1: V2 and closure phases only (blind to the primary's offset but for the
@@ -302,6 +328,7 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
     res_amp, _ = make_residual(obs, visphi=None, **rkw)
     fits = [_refine(res_amp, _params(gx[x], gy[y], ratio_map[y, x], has_phase=False, **kw))
             for y, x in zip(iy, ix)]
+    fits = _distinct(fits, 2 * step)
     if obs.has_phase:
         # Stage 2: the primary's offset from a grid of referenced-phase chi-square (the
         # phases wrap within a few mas), then every parameter refined on all data.
@@ -309,7 +336,8 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
         for f in fits:
             p = _params(f.params["dra"].value, f.params["ddec"].value,
                         f.params["flux_ratio"].value, has_phase=True, **kw)
-            p["flux_slope"].value = f.params["flux_slope"].value
+            for name in ("flux_slope", "diameter1", "diameter2"):
+                p[name].value = f.params[name].value
             x1, y1 = _primary_grid(obs, f.params, ch, step=step, radius=search_radius_mas,
                                    fibre_fwhm_mas=fibre_fwhm_mas)
             p["primary_dra"].value, p["primary_ddec"].value = x1, y1
@@ -328,8 +356,8 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
                                                    f.params["ddec"].value - bp["ddec"].value)
                    > min_dist), None)
 
-    names = ["dra", "ddec", "flux_ratio", "primary_dra", "primary_ddec"]
-    cov_fit_full = np.full((5, 5), np.nan)
+    names = ["dra", "ddec", "flux_ratio", "primary_dra", "primary_ddec", "diameter1", "diameter2"]
+    cov_fit_full = np.full((7, 7), np.nan)
     if best.covar is not None:
         idx = [best.var_names.index(n) if n in best.var_names else None for n in names]
         for a, ia in enumerate(idx):
@@ -337,23 +365,23 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
                 if ia is not None and ib is not None:
                     cov_fit_full[a, b] = best.covar[ia, ib] * scale
 
-    kind, samples = _bootstrap(obs, residual_kw=dict(fibre_fwhm_mas=fibre_fwhm_mas,
-                                                     diameters=diameters_mas),
+    kind, samples = _bootstrap(obs, residual_kw=dict(fibre_fwhm_mas=fibre_fwhm_mas),
                                start=bp, n_boot=n_boot, mode=bootstrap, seed=seed, names=names)
     cov_boot_full = (np.cov(samples, rowvar=False) if len(samples) > 2
-                     else np.full((5, 5), np.nan))
+                     else np.full((7, 7), np.nan))
     pos_fit, pos_boot = cov_fit_full[:2, :2], cov_boot_full[:2, :2]
     use_boot = (not np.all(np.isfinite(pos_fit))
                 or (np.all(np.isfinite(pos_boot)) and np.trace(pos_boot) > np.trace(pos_fit)))
     cov = (cov_boot_full if use_boot else cov_fit_full)[:2, :2]
     # Every other error: the larger of the two estimates (block by block).
-    prim_fit, prim_boot = cov_fit_full[3:, 3:], cov_boot_full[3:, 3:]
+    prim_fit, prim_boot = cov_fit_full[3:5, 3:5], cov_boot_full[3:5, 3:5]
     prim = (prim_boot if not np.all(np.isfinite(prim_fit)) or
             (np.all(np.isfinite(prim_boot)) and np.trace(prim_boot) > np.trace(prim_fit))
             else prim_fit)
-    err = np.sqrt(np.concatenate([np.diag(cov), [np.nan], np.diag(prim)]))
     with np.errstate(invalid="ignore"):
-        ratio_err = float(np.fmax(np.sqrt(cov_fit_full[2, 2]), np.sqrt(cov_boot_full[2, 2])))
+        other = np.fmax(np.sqrt(np.diag(cov_fit_full)), np.sqrt(np.diag(cov_boot_full)))
+    err = np.concatenate([np.sqrt(np.diag(cov)), other[2:3], np.sqrt(np.diag(prim)), other[5:]])
+    ratio_err = float(err[2])
 
     dra, ddec, ratio = bp["dra"].value, bp["ddec"].value, bp["flux_ratio"].value
     flag = 0
@@ -377,6 +405,9 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
         primary_ddec=float(bp["primary_ddec"].value) if obs.has_phase else nan,
         primary_dra_err=float(err[3]) if obs.has_phase else nan,
         primary_ddec_err=float(err[4]) if obs.has_phase else nan,
+        diameter1=float(bp["diameter1"].value), diameter2=float(bp["diameter2"].value),
+        diameter1_err=float(err[5]) if fit_diameters[0] else nan,
+        diameter2_err=float(err[6]) if fit_diameters[1] else nan,
         sep_pa=sep_pa(dra, ddec, cov), ellipse=error_ellipse(cov), chi2=chi2, chi2_red=chi2_red,
         ndata=ndata, nfree=nfree, flag=flag,
         runner_up_dra=float(runner.params["dra"].value) if runner is not None else nan,

@@ -109,8 +109,8 @@ def binary_observables(uvw_m, wave_m, *, dra_mas, ddec_mas, flux_ratio, flux_slo
 
 def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_mas,
               flux_ratios, bandwidth_m=None, fibre_fwhm_mas=None, primary_dra_mas=0.0,
-              primary_ddec_mas=0.0, baselines=BASELINES, triangles=TRIANGLES,
-              max_elements=2_000_000):
+              primary_ddec_mas=0.0, diameters_mas=(0.0, 0.0), baselines=BASELINES,
+              triangles=TRIANGLES, max_elements=2_000_000):
     """Chi-square of squared visibilities and closure phases on a grid of companions.
 
     Vectorised over positions (numpy broadcasting in chunks of at most
@@ -129,6 +129,8 @@ def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_
     wave_m : ndarray, shape (n_wave,), metres
     dra_mas, ddec_mas : ndarray, shape (n_pos,), companion offsets, mas
     flux_ratios : ndarray, shape (n_ratio,), trial flux ratios (grey)
+    diameters_mas : (float, float), uniform-disk diameters of primary and companion, mas
+    A NaN ``vis2_err`` (or ``t3phi_err``) excludes that observable from the sum.
 
     Returns
     -------
@@ -154,6 +156,7 @@ def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_
         vis = binary_visibility(
             u, v, wave, dx_rad=dx, dy_rad=dy, flux_ratio=ratios,
             x1_rad=primary_dra_mas * MAS, y1_rad=primary_ddec_mas * MAS,
+            diameter1_rad=diameters_mas[0] * MAS, diameter2_rad=diameters_mas[1] * MAS,
             bandwidth_m=bandwidth_m,
             fibre_fwhm_rad_at_2p2um=None if fibre_fwhm_mas is None else fibre_fwhm_mas * MAS)
         m2 = vis.real ** 2 + vis.imag ** 2                                # (pos, ratio, bl, wave)
@@ -165,7 +168,7 @@ def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_
     return out
 
 
-def make_residual(obs, *, fibre_fwhm_mas, diameters, vis2, t3phi, visphi, weight):
+def make_residual(obs, *, fibre_fwhm_mas, vis2, t3phi, visphi, weight):
     """Residual function of a least-squares fit, and its number of valid points.
 
     ``obs`` supplies errors, (u, v, w), wavelengths, bandwidths, baselines and
@@ -173,7 +176,8 @@ def make_residual(obs, *, fibre_fwhm_mas, diameters, vis2, t3phi, visphi, weight
     not fitted) are the data (possibly a bootstrap realisation); ``weight`` (n_wave,)
     multiplies each channel's squared residual (channel bootstrap). The returned
     function maps parameters (anything with ``valuesdict()``: dra, ddec, flux_ratio,
-    flux_slope, primary_dra, primary_ddec, mas) to (data - model) / error over the
+    flux_slope, primary_dra, primary_ddec, diameter1, diameter2; mas) to
+    (data - model) / error over the
     valid points, phases wrapped to (-pi, pi].
     """
     ok2 = np.isfinite(vis2) & np.isfinite(obs.vis2_err) & (obs.vis2_err > 0)
@@ -187,8 +191,9 @@ def make_residual(obs, *, fibre_fwhm_mas, diameters, vis2, t3phi, visphi, weight
         m2, mt, mp = binary_observables(
             obs.uvw, obs.wave, dra_mas=p["dra"], ddec_mas=p["ddec"], flux_ratio=p["flux_ratio"],
             flux_slope=p["flux_slope"], primary_dra_mas=p["primary_dra"],
-            primary_ddec_mas=p["primary_ddec"], diameter1_mas=diameters[0],
-            diameter2_mas=diameters[1], bandwidth_m=obs.bandwidth, fibre_fwhm_mas=fibre_fwhm_mas,
+            primary_ddec_mas=p["primary_ddec"], diameter1_mas=p.get("diameter1", 0.0),
+            diameter2_mas=p.get("diameter2", 0.0), bandwidth_m=obs.bandwidth,
+            fibre_fwhm_mas=fibre_fwhm_mas,
             baselines=obs.baselines, triangles=obs.triangles)
         parts = [((vis2 - m2) / obs.vis2_err * sw)[ok2],
                  (wrap(t3phi - mt) / obs.t3phi_err * sw)[okt]]

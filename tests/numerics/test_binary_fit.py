@@ -34,12 +34,13 @@ def uvw(instrument):
 
 
 def synth(uvw, rng, *, dra, ddec, ratio, e2=0.01, et=0.01, ep=None, x1=0.0, y1=0.0,
-          slope=0.0, n_pol=1, n_boot=0):
+          slope=0.0, n_pol=1, n_boot=0, d1=0.0):
     """Noisy V2 / closure phase (/ phase) from skymodel.binary_visibility, by hand."""
     def clean():
         vis = binary_visibility(uvw[:, 0, None], uvw[:, 1, None], WAVE, dx_rad=dra * MAS,
                                 dy_rad=ddec * MAS, flux_ratio=ratio * (WAVE / 2.2e-6) ** slope,
                                 x1_rad=x1 * MAS, y1_rad=y1 * MAS, bandwidth_m=BW,
+                                diameter1_rad=d1 * MAS,
                                 fibre_fwhm_rad_at_2p2um=FIBRE * MAS)
         t3 = np.array([np.angle(vis[PAIRS.index((i, j))] * vis[PAIRS.index((j, k))]
                                 * np.conj(vis[PAIRS.index((i, k))])) for i, j, k in TRI])
@@ -239,3 +240,19 @@ def test_pulls_with_bootstrap_are_not_overconfident(uvw):
                          n_start=2, seed=seed)
         pulls += [(res.dra - truth["dra"]) / res.dra_err, (res.ddec - truth["ddec"]) / res.ddec_err]
     assert 0.6 < np.std(pulls) < 1.25
+
+
+def test_uniform_disk_primary_against_scipy_j1(uvw, rng):
+    # Model: a single uniform disk (flux ratio 0) has V = 2 J1(z) / z, z = pi theta |b| / lambda
+    # (e.g. Born & Wolf, Principles of Optics, 8.5.2), evaluated here with scipy's j1.
+    from scipy.special import j1
+    v2, _, _ = binary_observables(uvw, WAVE, dra_mas=5.0, ddec_mas=0.0, flux_ratio=0.0,
+                                  diameter1_mas=2.0)
+    z = np.pi * 2.0 * MAS * np.hypot(uvw[:, 0, None], uvw[:, 1, None]) / WAVE
+    np.testing.assert_allclose(v2, (2 * j1(z) / z) ** 2, rtol=1e-10)
+    # Fit: a resolved primary (1.5 mas) with a companion, the diameter fitted.
+    obs = synth(uvw, rng, dra=9.0, ddec=-6.0, ratio=0.2, d1=1.5)
+    res = fit_binary(obs, fibre_fwhm_mas=FIBRE, search_radius_mas=15.0, n_boot=0,
+                     diameters_mas=(0.5, 0.0), fit_diameters=(True, False))
+    assert abs(res.diameter1 - 1.5) < 3 * res.diameter1_err and np.isnan(res.diameter2_err)
+    assert mahalanobis2(res, 9.0, -6.0) < D2_3SIGMA and res.nfree == 4
