@@ -77,14 +77,15 @@ def flat_products(raws, dark, *, instrument, setup_name, polmode, frames_per_chu
     valid0 = np.asarray(dark["valid"], bool) & ~sat & np.isfinite(mean)
     nominal = _nominal_trace_y(setup, polmode, instrument.combiner.n_output)
     rn = float(np.nanmedian(np.asarray(dark["read_noise"], float))) * det.gain_e_per_adu
-    fit = find_traces(np.where(valid0, mean, 0.0), nominal, valid=valid0,
-                      nominal_sigma=setup.trace_sigma_px, centre_deg=centre_deg,
-                      sigma_deg=sigma_deg, read_noise=rn / np.sqrt(n))
-    core = trace_profiles(fit.trace_y, fit.profile_sigma, n_y=master.shape[0]).max(0) > 0.1
-    frac = (sat & core).sum() / max(core.sum(), 1)
+    rows = np.arange(master.shape[0])[:, None]
+    core = (np.abs(rows - nominal[None, :]) < 3 * setup.trace_sigma_px).any(1)[:, None]
+    frac = (sat & core).sum() / max(core.sum() * sat.shape[1], 1)
     if frac > max_saturated:
         raise BadInput(raws[0].path, f"{100 * frac:.2f}% of the trace pixels are saturated in "
                                      "the flat; take flats with a shorter DIT")
+    fit = find_traces(np.where(valid0, mean, 0.0), nominal, valid=valid0,
+                      nominal_sigma=setup.trace_sigma_px, centre_deg=centre_deg,
+                      sigma_deg=sigma_deg, read_noise=rn / np.sqrt(n))
     response, lamp = pixel_response(np.where(valid0, mean, 0.0), fit.trace_y, fit.profile_sigma,
                                     valid=valid0, smooth_deg=min(spectrum_deg, setup.n_x - 2))
     valid = combine_valid(dark["valid"], response, flat_saturated=sat,
@@ -289,6 +290,9 @@ def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pi
         lengths lambda^2 / bandwidth of zero OPD
     """
     comb = instrument.combiner
+    if not resample:     # per-pixel channel: refer every output to the median wavelength
+        q = _lamp_shape_correction(beam_flux.sum(0), wave_pixel, wave_grid)
+        beam_flux, scan_intensity, scan_var = beam_flux * q, scan_intensity * q, scan_var * q ** 2
     ok = np.isfinite(scan_intensity)
     fill = np.where(ok, scan_intensity, np.nanmedian(np.where(ok, scan_intensity, np.nan), 0))
     wave_pixel, bandwidth_pixel = np.asarray(wave_pixel), np.asarray(bandwidth_pixel)
@@ -337,6 +341,28 @@ def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pi
             "phase_imbalance": Array(imbalance, pb, "", "QC: |mean exp(i theta)|"),
             "phase_offset_rms": Array(off, pb, "rad", "QC: scatter of theta - nominal"),
             "wave": Array(np.asarray(wave_grid, float), ("wave",), "m")}
+
+
+def _lamp_shape_correction(flux, wave, grid, deg=2):
+    """Factor exp(P(grid_p) - P(wave_kp)) that refers each output's pixel p to the
+    common wavelength grid_p for the lamp's spectral shape P (a polynomial in
+    wavelength common to all outputs, fitted to log flux with a free offset per output).
+    Without it, outputs whose pixels sit at slightly different wavelengths would carry
+    the lamp's spectral slope into their transmissions. flux, wave: (output, pix)."""
+    lf = np.log(np.maximum(np.asarray(flux, float), 1e-30))
+    w = np.asarray(wave, float)
+    n_out, n_pix = w.shape
+    xs = (w - grid.mean()) / np.ptp(grid)
+    design = np.zeros((n_out * n_pix, n_out + deg))
+    design[np.arange(n_out * n_pix), np.repeat(np.arange(n_out), n_pix)] = 1.0
+    for d in range(1, deg + 1):
+        design[:, n_out + d - 1] = (xs ** d).ravel()
+    coef = np.linalg.lstsq(design, lf.ravel(), rcond=None)[0][n_out:]
+    xg = (np.asarray(grid, float) - grid.mean()) / np.ptp(grid)
+
+    def shape(x):
+        return sum(c * x ** (d + 1) for d, c in enumerate(coef))
+    return np.exp(shape(xg)[None, :] - shape(xs))
 
 
 def require_beams(raws):

@@ -87,11 +87,18 @@ def test_wavelengths_and_bandwidths_match_truth(cal):
         assert np.all(np.diff(grid) > 0) and grid.size >= 0.8 * rel.shape[1]
 
 
-def test_combiner_matches_truth(cal):
+@pytest.mark.parametrize("label", [LABEL, "ft"])
+def test_combiner_matches_truth(cal, label):
     _, _, truth, view = cal
-    cb = view("combiner", LABEL)
-    wave = np.broadcast_to(cb["wave"], (24, cb["wave"].size))
-    t, theta, c, pairs = _laws(truth["instrument"]["channels"][LABEL]["combiner_laws"][0], wave)
+    cb = view("combiner", label)
+    tr = truth["instrument"]["channels"][label]
+    if label == "ft":    # per pixel, each output at its own wavelength; response included
+        wave = np.array(tr["wave_pixel_m"])
+    else:
+        wave = np.broadcast_to(cb["wave"], (24, cb["wave"].size))
+    t, theta, c, pairs = _laws(tr["combiner_laws"][0], wave)
+    if label == "ft":
+        t = t * np.array(truth["instrument"]["detectors"]["ft"]["pixel_response"])[:, None, :]
     share = t / t.sum(axis=0, keepdims=True)          # the product's documented normalisation
     k = np.arange(24)
     for a in (0, 1):
@@ -144,6 +151,8 @@ def test_inverse_model_gives_unit_visibility(cal, label):
     else:
         wave = np.broadcast_to(cb["wave"], (24, cb["wave"].size))
     t, theta, c, pairs = _laws(tr["combiner_laws"][0], wave)
+    if label == "ft":          # no flat field on the FT: its pixel response is part of t
+        t = t * np.array(truth["instrument"]["detectors"]["ft"]["pixel_response"])[:, None, :]
     flux = np.array([1.0e5, 0.8e5, 1.2e5, 0.9e5])[:, None] * np.ones((1, wave.shape[1]))
     inten = _synthesise(t, theta, c, pairs, flux)
     vis = _visibility(cb["p2vm"][0], inten)
