@@ -108,11 +108,20 @@ class RunSummary:
         return 1 if self.failed or self.bad_files else 0
 
     def text(self) -> str:
+        """Counts, then each root failure with its message, then the units that did not
+        run because an upstream product failed (grouped by stage)."""
         lines = [f"{len(self.computed)} product(s) computed, {len(self.reused)} reused, "
                  f"{len(self.failed)} failed, {len(self.bad_files)} unreadable file(s) "
                  f"in {self.seconds:.1f} s"]
         lines += [f"  UNREADABLE {p}: {m}" for p, m in self.bad_files]
-        lines += [f"  FAILED {s}/{l}: {m}" for s, l, m in self.failed]
+        downstream = {}
+        for s, l, m in self.failed:
+            if m.startswith("upstream "):
+                downstream.setdefault(s, []).append(l)
+            else:
+                lines.append(f"  FAILED {s}/{l}: {m}")
+        lines += [f"  NOT RUN (upstream failed) {s}: {', '.join(ls)}"
+                  for s, ls in downstream.items()]
         return "\n".join(lines)
 
 
@@ -136,8 +145,9 @@ def build_plan(night_dir, workdir, *, config=None, stages=None) -> Plan:
 
     Raises ConfigError (bad parameters) and BadInput (no night directory)."""
     stages = _stages() if stages is None else list(stages)
+    import recipes
     params = load_params(stages, config_files(config),
-                         also_known=[s.name for s in _stages()])
+                         also_known=[s.name for s in recipes.STAGES])
     inventory = Inventory.scan(night_dir)
     plan = Plan(inventory.night_dir, Path(workdir).resolve(), inventory, params, stages)
     ids = {r.path: r.identity for r in inventory.records}
@@ -329,14 +339,35 @@ def load_state(workdir) -> dict:
 
 # -- running the graph ---------------------------------------------------------------------
 
-def _compute(tasks: list, scheduler: str, workers: int | None, progress: bool) -> list:
+def _log_result(res: dict, debug: bool) -> None:
+    """One log line per finished unit, as it finishes."""
+    if res["state"] == "failed":
+        log.error("FAILED %s/%s %s: %s", res["stage"], res["label"], res["key"], res["message"],
+                  extra={"file_only": True})          # the summary repeats it
+        if res.get("traceback") and debug:
+            log.debug(res["traceback"])
+    else:
+        log.info("computed %s/%s %s in %.2f s%s", res["stage"], res["label"], res["key"],
+                 res["seconds"], f" (skipped: {res['message']})" if res["message"] else "")
+
+
+def _is_result(x) -> bool:
+    return isinstance(x, dict) and "state" in x and "stage" in x and "label" in x
+
+
+def _compute(tasks: list, scheduler: str, workers: int | None, progress: bool,
+             debug: bool = False) -> list:
     import dask
+    from dask.callbacks import Callback
     if scheduler.startswith("tcp://") or scheduler.startswith("tls://"):
-        from distributed import Client, progress as dist_progress
+        from distributed import Client, as_completed, progress as dist_progress
         with Client(scheduler) as client:
             futures = client.compute(tasks)
             if progress:
                 dist_progress(futures)
+            for fut in as_completed(futures):
+                if fut.status == "finished":
+                    _log_result(fut.result(), debug)
             return client.gather(futures)
     if scheduler not in ("threads", "processes", "synchronous"):
         raise ConfigError("--scheduler", f"expected threads, processes or tcp://HOST:PORT, "
@@ -344,11 +375,16 @@ def _compute(tasks: list, scheduler: str, workers: int | None, progress: bool) -
     kw = {"scheduler": scheduler}
     if workers:
         kw["num_workers"] = workers
-    if progress:
-        from dask.diagnostics import ProgressBar
-        with ProgressBar():
-            return list(dask.compute(*tasks, **kw))
-    return list(dask.compute(*tasks, **kw))
+
+    def posttask(key, result, dsk, state, worker_id):    # runs in this process
+        if _is_result(result):
+            _log_result(result, debug)
+    with Callback(posttask=posttask):
+        if progress:
+            from dask.diagnostics import ProgressBar
+            with ProgressBar():
+                return list(dask.compute(*tasks, **kw))
+        return list(dask.compute(*tasks, **kw))
 
 
 def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None,
@@ -407,19 +443,13 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
                     spec, up, dask_key_name=f"{pu.stage}:{pu.unit.label}:{pu.key[:8]}")
                 values[uid] = task
                 tasks.append((uid, task))
-            results = _compute([t for _, t in tasks], scheduler, workers, progress) if tasks else []
+            results = (_compute([t for _, t in tasks], scheduler, workers, progress, debug)
+                       if tasks else [])
             for (uid, _), res in zip(tasks, results):
                 if res["state"] == "failed":
                     summary.failed.append((uid[0], uid[1], res["message"]))
-                    log.error("FAILED %s/%s %s: %s", uid[0], uid[1], res["key"], res["message"],
-                              extra={"file_only": True})      # the summary repeats it
-                    if res.get("traceback") and debug:
-                        log.debug(res["traceback"])
                 else:
                     summary.computed.append(uid)
-                    log.info("computed %s/%s %s in %.2f s%s", uid[0], uid[1], res["key"],
-                             res["seconds"], f" (skipped: {res['message']})"
-                             if res["message"] else "")
             summary.seconds = time.perf_counter() - t0
             log.info("summary: %s", summary.text().replace("\n", " |"))
             return summary

@@ -107,7 +107,9 @@ def test_bad_file_fails_its_branch_only(night, tmp_path, rng):
     # The broken file's FT table is intact, so the FT dark used it (nothing skipped).
     ft = ProductView(next((work / "dark").glob("ft-period1ms.*.h5")))
     assert json.loads(ft.attrs["skipped_files"]) == []
-    assert "sci1.fits" in run.text() and "dark_3.fits" in run.text()
+    text = run.text()
+    assert "sci1.fits" in text and "dark_3.fits" in text
+    assert "NOT RUN (upstream failed) consumer: sci-low-joint-dit3" in text
 
 
 def test_config_errors_before_any_work(night, tmp_path):
