@@ -33,24 +33,29 @@ def _load(a):
 
 
 def ft_estimates(ext, *, chunk: int = 8192):
-    """Phase, group delay and SNR of every FT frame, reading ``ft_coherent`` in chunks."""
+    """Phase, group delay, SNR and per-telescope flux of every FT frame, reading the FT
+    stream in chunks. Returns (phase, group_delay, snr (ft_frame, baseline), flux
+    (ft_frame, telescope) summed over ft_wave, wave_ref)."""
     c, v = _read(ext, "ft_coherent"), _read(ext, "ft_coherent_var")
+    fl = _read(ext, "ft_flux")
     wave = np.asarray(ext["ft_wave"], float)
     n = c.shape[0]
     if n == 0:
         raise BadInput(getattr(ext, "path", "extract product"), "no fringe-tracker frames")
-    parts = []
+    parts, flux = [], []
     for a in range(0, n, chunk):
         cc, vv = _load(c[a:a + chunk]), _load(v[a:a + chunk])
         parts.append(fringe_estimates(cc, wave, ft_coherent_var=vv))
+        flux.append(_load(fl[a:a + chunk]).sum(axis=-1))
     return (np.concatenate([p.phase for p in parts]),
             np.concatenate([p.group_delay for p in parts]),
-            np.concatenate([p.snr for p in parts]), parts[0].wave_ref)
+            np.concatenate([p.snr for p in parts]), np.concatenate(flux), parts[0].wave_ref)
 
 
 def reference_exposure(ext, *, instrument, snr_min: float, max_group_delay: float,
                        window: int, guard: int, max_rejected_fraction: float,
-                       min_contrast: float, chunk: int = 8192) -> dict:
+                       min_contrast: float, weight_by_ft_flux: bool = True,
+                       chunk: int = 8192) -> dict:
     """Outputs of the ``reference`` stage for one exposure (see DEVELOPERS.md).
 
     Parameters
@@ -63,6 +68,8 @@ def reference_exposure(ext, *, instrument, snr_min: float, max_group_delay: floa
         more than this fraction of its FT frames are flagged
     min_contrast : float, a science frame is invalid when its contrast loss,
         averaged over wavelength, is below this
+    weight_by_ft_flux : bool, weight the FT phasors by the FT photometry (the contrast
+        loss then includes the decorrelation by coupling fluctuations within a frame)
     """
     attrs = ext.attrs
     where = getattr(ext, "path", "extract product")
@@ -70,7 +77,7 @@ def reference_exposure(ext, *, instrument, snr_min: float, max_group_delay: floa
         raise BadInput(where, f"phase referencing needs a science or calibrator exposure, "
                               f"found {attrs.get('kind')!r}")
     baselines = instrument.combiner.baselines
-    phase, gd, snr, wave_ref = ft_estimates(ext, chunk=chunk)
+    phase, gd, snr, ft_flux, wave_ref = ft_estimates(ext, chunk=chunk)
     opd = track_opd(phase, gd, wave_ref=wave_ref, window=window)
     flags = flag_ft_frames(snr, gd, opd, wave_ref=wave_ref, baselines=baselines,
                            triangles=instrument.combiner.triangles, snr_min=snr_min,
@@ -80,7 +87,8 @@ def reference_exposure(ext, *, instrument, snr_min: float, max_group_delay: floa
     start, exp = np.asarray(ext["frame_start"], float), np.asarray(ext["frame_exp"], float)
     wave = np.asarray(ext["wave"], float)
     lo, hi = frame_windows(ft_mid, start, exp)
-    phasor = mean_phasor(opd, lo, hi, wave)
+    phasor = mean_phasor(opd, lo, hi, wave, flux=ft_flux if weight_by_ft_flux else None,
+                         baselines=baselines)
     loss = np.abs(phasor)
     bad_fraction = window_fraction(flags != 0, lo, hi)                 # (frame, baseline)
 
@@ -106,7 +114,8 @@ def reference_exposure(ext, *, instrument, snr_min: float, max_group_delay: floa
                               "referenced coherent flux; amplitude still includes contrast_loss"),
         "frame_valid": Array(valid, ("frame", "baseline"), "", "True = usable"),
         "contrast_loss": Array(loss, ("frame", "baseline", "wave"), "",
-                               "|<exp(-2 pi i (r_j - r_i) / lambda)>| over the frame"),
+                               "|<exp(-2 pi i (r_j - r_i) / lambda)>| over the frame" + (
+                                   ", weighted by the FT coupling" if weight_by_ft_flux else "")),
         "ft_phase": Array(phase, ("ft_frame", "baseline"), "rad"),
         "ft_snr": Array(snr, ("ft_frame", "baseline"), ""),
         "ft_group_delay": Array(gd, ("ft_frame", "baseline"), "m"),
@@ -117,6 +126,7 @@ def reference_exposure(ext, *, instrument, snr_min: float, max_group_delay: floa
         "dual_field_delay": Array(delay, ("frame", "baseline"), "m", "D_ij"),
         "wave": Array(wave, ("wave",), "m"),
         "ft_wave_ref": wave_ref,
+        "contrast_loss_weighting": "ft_flux" if weight_by_ft_flux else "none",
         "ft_rejected_fraction": [float(x) for x in ft_bad],
         "frame_rejected_fraction": [float(x) for x in 1 - valid.mean(axis=0)],
         "lock_loss_fraction": float(((flags & (FLAG_LOW_SNR | FLAG_GD_EXCURSION)) != 0).mean()),

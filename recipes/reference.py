@@ -19,6 +19,7 @@ class ReferenceParams:
     guard_frames: int = 10              # FT frames flagged either side of an event
     max_rejected_fraction: float = 0.05 # science frame invalid above this flagged FT fraction
     min_contrast: float = 0.2           # science frame invalid below this mean contrast loss
+    weight_by_ft_flux: bool = True      # contrast loss includes coupling fluctuations (FT flux)
     ft_chunk_frames: int = 8192         # FT frames read at a time
 
     def __post_init__(self):
@@ -46,7 +47,8 @@ def run(inputs, params: ReferenceParams) -> dict:
         inputs.products["extract"], instrument=inputs.instrument, snr_min=params.snr_min,
         max_group_delay=params.max_group_delay_um * 1e-6, window=params.window_frames,
         guard=params.guard_frames, max_rejected_fraction=params.max_rejected_fraction,
-        min_contrast=params.min_contrast, chunk=params.ft_chunk_frames)
+        min_contrast=params.min_contrast, weight_by_ft_flux=params.weight_by_ft_flux,
+        chunk=params.ft_chunk_frames)
 
 
 STAGE = Stage(name="reference", version="1", params=ReferenceParams, after=("extract",),

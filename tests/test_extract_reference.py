@@ -166,10 +166,10 @@ def test_contrast_loss_matches_truth(calibrator):
     wave = calibrator["ext"]["wave"]
     k = np.argmin(np.abs(wave - 2.2e-6))
     expected = np.array(truth["frame_coherence_2p2um"])
-    # truth also contains the decorrelation by injection fluctuations within a frame
-    # (lognormal, log-sigma 0.25, 40 ms; about 1 %), which the pure-phase estimate omits;
-    # FT phase noise at SNR ~15 biases |mean phasor| by < 0.5 %. 0.04 covers both.
-    np.testing.assert_allclose(ref["contrast_loss"][:, :, k], expected, atol=0.04)
+    # the truth is |<sqrt(rho_i rho_j) exp(i phi)>| / sqrt(<rho_i><rho_j>) at 2.2 um (the FT
+    # flux weighting estimates the coupling rho); FT phase noise at SNR ~15 (~15 nm of path)
+    # and FT photometric noise leave ~0.5 % per frame: measured <= 0.016 on three seeds
+    np.testing.assert_allclose(ref["contrast_loss"][:, :, k], expected, atol=0.025)
     assert expected.min() < 0.9                       # a real loss is being measured
 
 
@@ -186,10 +186,10 @@ def test_calibrator_is_point_like_after_correction(calibrator, instrument):
     v_ud = uniform_disk_visibility(uvw[:, 0, None], uvw[:, 1, None], wave,
                                    truth["diameter_mas"] * MAS)
     ratio = np.median(v / v_ud, axis=1)
-    # |V| amplitude per frame and wavelength has ~3 % noise, so the median over 22
-    # wavelengths is good to ~1 %; the injection decorrelation (not in the pure-phase
-    # contrast loss) lowers it by ~1-2 %. Hence [0.95, 1.03].
-    assert np.all((ratio > 0.95) & (ratio < 1.03)), ratio
+    # |V| per frame and wavelength has ~3 % noise, so the median over 22 wavelengths of
+    # the 4-frame ratio of sums is good to ~1 %; the truth-built P2VM (interpolated to
+    # the grid) adds < 1 %. Hence [0.97, 1.03] (3 sigma).
+    assert np.all((ratio > 0.97) & (ratio < 1.03)), ratio
     # without the contrast-loss correction it is visibly lower (frame coherence < 0.9)
     v_raw = np.abs(c).sum(0) / np.sqrt(flux[:, I] * flux[:, J]).sum(0)
     assert np.median(v_raw / v_ud) < np.median(ratio) - 0.05
@@ -338,10 +338,10 @@ def test_engine_calibrator_point_like(reduced, instrument):
     v_ud = uniform_disk_visibility(uvw[:, 0, None], uvw[:, 1, None], wave, t["diameter_mas"] * MAS)
     ratio = np.median(v / v_ud, axis=1)
     # as test_calibrator_is_point_like_after_correction, plus the calibration stages' own
-    # errors (contrast and transmission from 3-4 lamp frames, ~1 %): [0.94, 1.03]
-    assert np.all((ratio > 0.94) & (ratio < 1.03)), ratio
+    # errors (contrast and transmission from 3-4 lamp frames, ~1 %): [0.96, 1.03]
+    assert np.all((ratio > 0.96) & (ratio < 1.03)), ratio
     k = np.argmin(np.abs(wave - 2.2e-6))
-    np.testing.assert_allclose(loss[:, :, k], np.array(t["frame_coherence_2p2um"]), atol=0.04)
+    np.testing.assert_allclose(loss[:, :, k], np.array(t["frame_coherence_2p2um"]), atol=0.025)
     # referencing with the pipeline's P2VMs: the phase is the same in every frame (the
     # zero-point now also holds the instrumental phases, calibrated later on a star)
     dphi = np.angle(c * np.conj(c.mean(axis=0)))

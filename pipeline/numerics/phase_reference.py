@@ -277,7 +277,7 @@ def window_mean(values, sample_time, frame_start, frame_exp):
     return np.where(n > 0, _window_sum(v, lo, hi) / np.maximum(n, 1), interp)
 
 
-def mean_phasor(opd, lo, hi, wave, *, block: int = 1024):
+def mean_phasor(opd, lo, hi, wave, *, flux=None, baselines=None, block: int = 1024):
     """Mean phasor <exp(-2 pi i opd / lambda)> over each science frame.
 
     Parameters
@@ -286,6 +286,14 @@ def mean_phasor(opd, lo, hi, wave, *, block: int = 1024):
     lo, hi : array_like, shape (n_frame,), int, FT frames of each science frame
         (:func:`frame_windows`)
     wave : array_like, shape (n_wave,), m, science wavelengths
+    flux : array_like, shape (n_ft, n_tel), optional
+        Per-telescope flux of every FT frame (any unit). When given, the phasor
+        is weighted by the coupling of the frame, as a science frame integrates
+        it: <sqrt(F_i F_j) exp(...)> / sqrt(<F_i> <F_j>); the modulus then also
+        holds the loss of coherence by injection fluctuations within the frame
+        (<sqrt(F_i F_j)> <= sqrt(<F_i><F_j>), Cauchy-Schwarz). Negative fluxes
+        (noise) count as zero.
+    baselines : sequence of (i, j), length n_base; needed with ``flux``
     block : int, FT frames summed at a time (memory ~ block * n_base * n_wave * 16 bytes)
 
     Returns
@@ -300,12 +308,28 @@ def mean_phasor(opd, lo, hi, wave, *, block: int = 1024):
     out = np.full((len(lo), opd.shape[1], k.size), np.nan + 0j)
     if block < 1:
         raise ValueError(f"block must be >= 1, found {block}")
-    for f, (a, b) in enumerate(zip(lo, hi)):       # loop over science frames only
-        if b > a:
+    if flux is not None:
+        if baselines is None:
+            raise ValueError("mean_phasor: flux weighting needs the baselines (i, j)")
+        f = np.maximum(np.asarray(flux, float), 0.0)
+        b = np.asarray(baselines, int)
+        if f.ndim != 2 or f.shape[0] != opd.shape[0] or len(b) != opd.shape[1]:
+            raise ValueError(f"flux must be (ft_frame, telescope) with {opd.shape[0]} frames "
+                             f"and baselines {opd.shape[1]} pairs; found {f.shape}, {len(b)}")
+        amp = np.sqrt(f[:, b[:, 0]] * f[:, b[:, 1]])                  # (n_ft, n_base)
+    for n, (a, e) in enumerate(zip(lo, hi)):       # loop over science frames only
+        if e > a:
             acc = np.zeros(out.shape[1:], complex)
-            for c in range(a, b, block):
-                acc += np.exp(1j * opd[c:min(b, c + block), :, None] * k).sum(axis=0)
-            out[f] = acc / (b - a)
+            for c in range(a, e, block):
+                ph = np.exp(1j * opd[c:min(e, c + block), :, None] * k)
+                acc += (ph if flux is None else ph * amp[c:min(e, c + block), :, None]).sum(0)
+            if flux is None:
+                out[n] = acc / (e - a)
+            else:
+                fm = f[a:e].mean(axis=0)
+                norm = (e - a) * np.sqrt(fm[b[:, 0]] * fm[b[:, 1]])
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    out[n] = np.where(norm[:, None] > 0, acc / norm[:, None], np.nan)
     return out
 
 

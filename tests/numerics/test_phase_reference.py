@@ -174,6 +174,27 @@ def test_contrast_loss_and_referencing(scene, rng):
     np.testing.assert_allclose(np.abs(ref), np.abs(sci), rtol=1e-12)   # amplitude untouched
 
 
+def test_flux_weighted_phasor(rng):
+    # a science frame integrates sqrt(F_i F_j) exp(i phi) and its photometry <F_i>, so the
+    # coherence it keeps is |<sqrt(F_i F_j) exp(i phi)>| / sqrt(<F_i><F_j>) (computed
+    # directly below); by Cauchy-Schwarz it is at most the pure-phase |<exp(i phi)>|
+    n, wave = 300, np.array([2.0e-6, 2.3e-6])
+    opd = residual_paths(rng, n)[:, :2] @ np.array([[-1.0], [1.0]])      # baseline (0, 1)
+    flux = np.exp(0.4 * rng.standard_normal((n, 2)))                       # lognormal coupling
+    lo, hi = np.array([0, 100]), np.array([100, 300])
+    got = mean_phasor(opd, lo, hi, wave, flux=flux, baselines=[(0, 1)])
+    for f, (a, b) in enumerate(zip(lo, hi)):
+        for w, lam in enumerate(wave):
+            num = np.mean(np.sqrt(flux[a:b, 0] * flux[a:b, 1]) * np.exp(-2j * np.pi * opd[a:b, 0] / lam))
+            direct = num / np.sqrt(flux[a:b, 0].mean() * flux[a:b, 1].mean())
+            assert got[f, 0, w] == pytest.approx(direct, rel=1e-12)
+    plain = mean_phasor(opd, lo, hi, wave)
+    assert np.all(np.abs(got) <= np.abs(plain) + 1e-12)
+    # constant fluxes: the weighting changes nothing
+    same = mean_phasor(opd, lo, hi, wave, flux=np.full((n, 2), 3.0), baselines=[(0, 1)])
+    np.testing.assert_allclose(same, plain, rtol=1e-12)
+
+
 def test_dual_field_delay_against_spherical_trigonometry():
     # s in local East/North/Up from hour angle H and declination (standard
     # spherical astronomy: e.g. Smart, Textbook on Spherical Astronomy, ch. 2)
