@@ -126,7 +126,8 @@ class BinaryFitResult:
     ddec_err: float
     dra_ddec_corr: float
     flux_ratio: float
-    flux_ratio_err: float
+    flux_ratio_err: float                 # total: statistical and fibre-pointing terms
+    flux_ratio_err_stat: float            # statistical only (used by the zero-ratio flag)
     flux_slope: float
     primary_dra: float                    # NaN without calibrated phases
     primary_ddec: float
@@ -249,7 +250,7 @@ def _refine(residual, start):
 def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_mas: float,
                step_fraction: float = 0.25, flux_ratios=None, flux_ratio_max: float = 1.5,
                fit_slope: bool = False, diameters_mas=(0.0, 0.0), fit_diameters=(False, False),
-               n_start: int = 5,
+               pointing_sigma_mas: float = 0.0, n_start: int = 5,
                n_boot: int = 50, search_max_channels: int = 32, ambiguous_dchi2: float = 10.0,
                chi2_red_range=(0.25, 3.0), bootstrap: Literal["auto", "channels", "none"] = "auto",
                seed: int = 0) -> BinaryFitResult:
@@ -270,6 +271,9 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
         (fixed values, or starting values of the refinement; the grid search treats
         both stars as points)
     fit_diameters : (bool, bool), fit the primary's / the companion's diameter
+    pointing_sigma_mas : float, 1-sigma uncertainty (per axis, mas) of where the pair sits
+        in the fibre (the science pointing; with referenced phases, the calibrators'
+        pointing), propagated into ``flux_ratio_err`` through the fibre attenuation
     n_start : int, number of grid minima refined
     n_boot : int, bootstrap realisations (0: none)
     search_max_channels : int, channels (evenly spread) used by the grid search
@@ -382,8 +386,15 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
         other = np.fmax(np.sqrt(np.diag(cov_fit_full)), np.sqrt(np.diag(cov_boot_full)))
     err = np.concatenate([np.sqrt(np.diag(cov)), other[2:3], np.sqrt(np.diag(prim)), other[5:]])
     ratio_err = float(err[2])
-
+    # The on-sky ratio divides out the fibre attenuation of both stars: a common shift
+    # delta of the pair in the fibre changes ln(c1 / c2) by 8 ln2 (d . delta) / FWHM^2.
     dra, ddec, ratio = bp["dra"].value, bp["ddec"].value, bp["flux_ratio"].value
+    if fibre_fwhm_mas and pointing_sigma_mas > 0:
+        rel = 8 * np.log(2) * np.hypot(dra, ddec) * pointing_sigma_mas / fibre_fwhm_mas ** 2
+        ratio_err_total = float(np.hypot(ratio_err, ratio * rel))
+    else:
+        ratio_err_total = ratio_err
+
     flag = 0
     dchi2 = float(runner.chisqr - chi2) if runner is not None else np.nan
     if runner is not None and dchi2 / scale < ambiguous_dchi2:
@@ -399,7 +410,8 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
     nan = float("nan")
     return BinaryFitResult(
         dra=float(dra), ddec=float(ddec), cov=cov, dra_err=float(err[0]), ddec_err=float(err[1]),
-        dra_ddec_corr=correlation(cov), flux_ratio=float(ratio), flux_ratio_err=ratio_err,
+        dra_ddec_corr=correlation(cov), flux_ratio=float(ratio),
+        flux_ratio_err=ratio_err_total, flux_ratio_err_stat=ratio_err,
         flux_slope=float(bp["flux_slope"].value),
         primary_dra=float(bp["primary_dra"].value) if obs.has_phase else nan,
         primary_ddec=float(bp["primary_ddec"].value) if obs.has_phase else nan,

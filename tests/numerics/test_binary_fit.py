@@ -256,3 +256,24 @@ def test_uniform_disk_primary_against_scipy_j1(uvw, rng):
                      diameters_mas=(0.5, 0.0), fit_diameters=(True, False))
     assert abs(res.diameter1 - 1.5) < 3 * res.diameter1_err and np.isnan(res.diameter2_err)
     assert mahalanobis2(res, 9.0, -6.0) < D2_3SIGMA and res.nfree == 4
+
+
+def test_pointing_term_of_flux_ratio_error(uvw, rng):
+    # A common shift delta of the pair in the fibre changes ln(c1/c2) by
+    # 8 ln2 (d . delta) / FWHM^2; checked against pipeline.skymodel.fibre_coupling by
+    # finite differences (the Gaussian fibre model), along d where it is largest.
+    from pipeline.skymodel import fibre_coupling
+    d = np.array([28.0, -31.0])
+    delta = 1e-3 * d / np.hypot(*d)
+    def ln_ratio(shift):
+        c1 = fibre_coupling(shift[0] * MAS, shift[1] * MAS, 2.2e-6, FIBRE * MAS)
+        c2 = fibre_coupling((d[0] + shift[0]) * MAS, (d[1] + shift[1]) * MAS, 2.2e-6, FIBRE * MAS)
+        return np.log(c1 / c2)
+    slope = (ln_ratio(delta) - ln_ratio(-delta)) / 2e-3          # per mas along d
+    assert slope == pytest.approx(8 * np.log(2) * np.hypot(*d) / FIBRE ** 2, rel=1e-6)
+    obs = synth(uvw, rng, dra=10.0, ddec=-6.0, ratio=0.3)
+    res = fit_binary(obs, fibre_fwhm_mas=FIBRE, search_radius_mas=15.0, n_boot=0,
+                     pointing_sigma_mas=2.0)
+    rel = 8 * np.log(2) * np.hypot(res.dra, res.ddec) * 2.0 / FIBRE ** 2
+    assert res.flux_ratio_err == pytest.approx(np.hypot(res.flux_ratio_err_stat,
+                                                        res.flux_ratio * rel), rel=1e-12)
