@@ -87,6 +87,9 @@ def fringe_estimates(ft_coherent, ft_wave, *, ft_coherent_var, n_refine: int = 2
         Weighted least-squares refinements of the group delay after the coarse
         estimate from adjacent-pixel cross products.
 
+    Non-finite coherent fluxes or variances (e.g. an FT pixel the combiner
+    calibration could not model) are ignored: they enter no sum.
+
     Returns
     -------
     FringeEstimates
@@ -106,6 +109,9 @@ def fringe_estimates(ft_coherent, ft_wave, *, ft_coherent_var, n_refine: int = 2
     sigma = 1.0 / wave
     if not (np.all(np.diff(sigma) > 0) or np.all(np.diff(sigma) < 0)):
         raise ValueError("ft_wave must be strictly monotonic")
+    bad = ~(np.isfinite(c) & np.isfinite(var))
+    if bad.any():                                  # NaN policy: such pixels get zero weight
+        c, var = np.where(bad, 0, c), np.where(bad, 0.0, var)
     sigma0 = sigma.mean()
     cross = np.sum(c[..., 1:] * np.conj(c[..., :-1]), axis=-1)
     gd = -np.angle(cross) / (2 * np.pi * np.mean(np.diff(sigma)))

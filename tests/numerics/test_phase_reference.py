@@ -79,6 +79,19 @@ def test_group_delay_phase_snr(scene):
     assert np.median(est.snr[1000:1100]) < 3
 
 
+def test_nan_pixel_is_ignored(scene):
+    c = scene["c"].copy()
+    c[:, :, 2] = np.nan                            # one FT pixel unusable in every frame
+    est = fringe_estimates(c, FT_WAVE, ft_coherent_var=scene["v"])
+    good = np.ones(scene["n"], bool)
+    good[1000:1100] = False
+    assert np.isfinite(est.group_delay).all() and np.isfinite(est.snr).all()
+    # five pixels left: the SNR scales as sqrt(5/6) of the full one (same per-pixel SNR)
+    assert np.median(est.snr[good]) == pytest.approx(np.sqrt(5) * AMP / np.sqrt(VAR), rel=0.05)
+    dphi = np.angle(np.exp(1j * (est.phase + 2 * np.pi * scene["opd"] / est.wave_ref)))[good]
+    assert np.sqrt(np.mean(dphi ** 2)) < 0.1
+
+
 def test_tracking_and_flags(scene):
     est = fringe_estimates(scene["c"], FT_WAVE, ft_coherent_var=scene["v"])
     opd = track_opd(est.phase, est.group_delay, wave_ref=est.wave_ref, window=25)
