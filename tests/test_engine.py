@@ -44,7 +44,9 @@ def test_second_reduce_runs_nothing(night, tmp_path):
     second = reduce(night, work, stages=STAGES, progress=False)
     assert second.computed == [] and set(second.reused) == ALL
     assert set(_states(work).values()) == {"current"}
-    log = (work / LOG_FILE).read_text().split("reduce ")[-1]     # the second run's lines
+    runs = (work / LOG_FILE).read_text().split(" INFO reduce ")
+    assert len(runs) == 3 and "computed dark/sci-low-joint-dit1 " in runs[1]
+    log = runs[-1]                                               # the second run's lines
     assert "computed" not in log.replace("0 product(s) computed", "") and log.count("reuse ") == 6
 
 
