@@ -76,6 +76,16 @@ def test_recovers_fluxes_and_visibilities_within_noise(rng, n_pol):
     np.testing.assert_allclose(v_est, np.broadcast_to(vis, v_est.shape), atol=0.01)
 
 
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_dtypes(rng, dtype):
+    # FT counts arrive as float32: the solution is computed and returned in float64
+    v2pm = true_v2pm(rng, 1, 3)
+    x = rng.uniform(100, 200, (5, 1, 24, 3)).astype(dtype)
+    out = invert_combiner(x, np.linalg.pinv(v2pm).astype(dtype), variance=x)
+    assert out.flux.dtype == np.float64 and out.coherent.dtype == np.complex128
+    assert out.coherent_var.dtype == np.float64 and (out.coherent_var > 0).all()
+
+
 def test_trace_order_output_major():
     # DEVELOPERS.md: a trace index is output * n_pol + pol
     tr = np.arange(48)[None, :, None] * np.ones((3, 1, 7))
