@@ -104,10 +104,10 @@ def reference_exposure(ext, *, instrument, snr_min: float, max_group_delay: floa
                              station_enu_m=np.asarray(ext["station_enu"], float),
                              latitude_rad=lat, baselines=baselines)
     ref = reference_coherent(np.asarray(ext["coherent"]), phasor, delay, wave)
-    with np.errstate(invalid="ignore"):
-        valid = ((bad_fraction <= max_rejected_fraction) & (hi - lo > 0)[:, None]
-                 & (np.nanmean(loss, axis=-1) >= min_contrast)
-                 & np.isfinite(ref).any(axis=(1, 3)))
+    finite = np.isfinite(loss)
+    mean_loss = np.where(finite, loss, 0.0).sum(-1) / np.maximum(finite.sum(-1), 1)
+    valid = ((bad_fraction <= max_rejected_fraction) & (hi - lo > 0)[:, None]
+             & (mean_loss >= min_contrast) & np.isfinite(ref).any(axis=(1, 3)))
     ft_bad = (flags != 0).mean(axis=0)
     return {
         "coherent_ref": Array(ref, ("frame", "pol", "baseline", "wave"), "e-/s",
