@@ -50,22 +50,34 @@ class Extracted:
     n_rejected: np.ndarray
 
 
-def _solve_banded(diag_sums, rhs):
-    """diag_sums: list of (x, trace, frame) for offsets 0, 1, 2; rhs (x, trace, frame).
-    Returns solution and diagonal of the inverse, both (frame, trace, x)."""
+def _solve_banded(diag_sums, rhs, n_sweep=12):
+    """Solve the symmetric, diagonally dominant banded normal equations (offsets 0, 1, 2
+    between traces) by Jacobi sweeps, vectorised over columns and frames.
+
+    diag_sums: list of (x, trace, frame) for offsets 0, 1, 2; rhs (x, trace, frame).
+    Returns the solution and the diagonal of the inverse to second order in the
+    off-diagonal terms (exact when the traces do not overlap), both (frame, trace, x).
+    Neighbouring traces 4 px apart with 1 px Gaussian profiles couple at the ~2-4%
+    level, so each sweep gains more than a decade."""
     a0, a1, a2 = diag_sums
-    n_x, n_t, n_f = a0.shape
-    mat = np.zeros((n_f, n_x, n_t, n_t))
-    k = np.arange(n_t)
-    mat[:, :, k, k] = a0.transpose(2, 0, 1)
+
+    def offdiag_times(f):
+        out = np.zeros_like(f)
+        for d, ad in ((1, a1), (2, a2)):
+            out[:, :-d] += ad[:, :-d] * f[:, d:]
+            out[:, d:] += ad[:, :-d] * f[:, :-d]
+        return out
+
+    f = rhs / a0
+    for _ in range(n_sweep):
+        f = (rhs - offdiag_times(f)) / a0
+    inv0 = 1.0 / a0
+    second = np.zeros_like(a0)
     for d, ad in ((1, a1), (2, a2)):
-        if n_t > d:
-            off = ad[:, : n_t - d, :].transpose(2, 0, 1)
-            mat[:, :, k[:-d], k[d:]] = off
-            mat[:, :, k[d:], k[:-d]] = off
-    inv = np.linalg.inv(mat)
-    sol = (inv @ rhs.transpose(2, 0, 1)[..., None])[..., 0]
-    return sol.transpose(0, 2, 1), np.einsum("fxkk->fkx", inv)
+        second[:, :-d] += ad[:, :-d] ** 2 * inv0[:, d:]
+        second[:, d:] += ad[:, :-d] ** 2 * inv0[:, :-d]
+    var = inv0 + inv0 ** 2 * second
+    return f.transpose(2, 1, 0), var.transpose(2, 1, 0)
 
 
 def optimal_extract(frames, profiles, *, read_noise, valid=None, clip: float = 6.0,

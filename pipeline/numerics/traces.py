@@ -102,43 +102,63 @@ def _check_image(image, valid, name="image"):
     return np.where(valid, image, 0.0), valid
 
 
-def _column_fit(image, valid, c0, s0, *, n_iter=12, fit_shape=True):
+def _column_fit(image, valid, c0, s0, *, n_iter=40, fit_shape=True):
     """Joint least-squares fit, column by column (vectorised over x), of
-    background + sum_k a_k P(y; c_k, s_k). Returns a, c, s of shape (trace, x)."""
+    background + sum_k a_k P(y; c_k, s_k). Returns a, c, s of shape (trace, x).
+
+    With ``fit_shape`` False only the amplitudes and one background per column are
+    solved (linear, all traces jointly). Otherwise each trace is fitted in a window
+    of rows (amplitude, centre, width; one Levenberg-Marquardt step) after
+    subtracting the column's background and the current model of every other
+    trace, then the backgrounds are re-estimated, and the sweep is repeated (block
+    coordinate descent on the joint least-squares problem: neighbours overlap
+    weakly, so it converges in a few sweeps)."""
     n_y, n_x = image.shape
     n_t = c0.shape[0]
-    y = np.arange(n_y, dtype=float)[None, :, None]          # (1, y, 1)
-    w = valid.astype(float).T                                # (x, y)
-    d = image.T                                              # (x, y)
-    c, s = c0.T.copy(), s0.T.copy()                          # (x, trace)
-    a = None
-    for _ in range(n_iter if fit_shape else 1):
-        p, dc, ds = _pix_gauss(y, c.T[:, None, :], s.T[:, None, :])  # (trace, y, x)
-        p, dc, ds = (q.transpose(2, 1, 0) for q in (p, dc, ds))      # (x, y, trace)
-        ones = np.ones((n_x, n_y, 1))
-        if a is None or not fit_shape:
-            jac = np.concatenate([p, ones], axis=2)
-            jw = (jac * w[:, :, None]).transpose(0, 2, 1)
-            lhs, rhs = jw @ jac, (jw @ d[:, :, None])[..., 0]
-            lhs += 1e-12 * np.trace(lhs, axis1=1, axis2=2)[:, None, None] * np.eye(n_t + 1)
-            sol = np.linalg.solve(lhs, rhs[..., None])[..., 0]
-            a, b = sol[:, :n_t], sol[:, n_t]
-            if not fit_shape:
-                break
-        model = (p @ a[:, :, None])[..., 0] + b[:, None]
-        res = d - model
-        jac = np.concatenate([p, dc * a[:, None, :], ds * a[:, None, :], ones], axis=2)
-        jw = (jac * w[:, :, None]).transpose(0, 2, 1)
-        lhs, rhs = jw @ jac, (jw @ res[:, :, None])[..., 0]
-        diag = np.einsum("xii->xi", lhs)
-        lhs = lhs + np.einsum("xi,ij->xij", 1e-3 * diag + 1e-12 * diag.max(1, keepdims=True),
-                              np.eye(lhs.shape[1]))
+    if not fit_shape:
+        y = np.arange(n_y, dtype=float)[None, :, None]
+        p = _pix_gauss(y, c0[:, None, :], s0[:, None, :])[0].transpose(2, 1, 0)  # (x, y, k)
+        jac = np.concatenate([p, np.ones((n_x, n_y, 1))], axis=2)
+        jw = (jac * valid.T.astype(float)[:, :, None]).transpose(0, 2, 1)
+        lhs, rhs = jw @ jac, (jw @ image.T[:, :, None])[..., 0]
+        lhs += 1e-12 * np.trace(lhs, axis1=1, axis2=2)[:, None, None] * np.eye(n_t + 1)
+        sol = np.linalg.solve(lhs, rhs[..., None])[..., 0]
+        return sol[:, :n_t].T, c0, s0
+    c, s = c0.astype(float).copy(), s0.astype(float).copy()
+    h = int(np.ceil(3.5 * max(float(np.max(s0)), 1.0)))
+    offs = np.arange(-h, h + 1)
+    xi = np.arange(n_x)[None, :, None]
+    w_img = valid.astype(float)
+
+    def gather(arr, rows):
+        return arr[np.clip(rows, 0, n_y - 1), xi]
+
+    rows = np.rint(c)[..., None].astype(int) + offs
+    a = np.maximum(gather(image, np.rint(c)[..., None].astype(int))[..., 0], 0.0) \
+        * np.sqrt(2 * np.pi) * s
+    bkg = np.zeros(n_x)
+    xx = np.broadcast_to(xi, (n_t, n_x, offs.size))
+    for _ in range(n_iter):
+        rows = np.rint(c)[..., None].astype(int) + offs              # (trace, x, win)
+        inside = (rows >= 0) & (rows < n_y)
+        p, dc, ds = _pix_gauss(rows.astype(float), c[..., None], s[..., None])
+        model_all = np.zeros((n_y, n_x))                             # traces in their windows
+        np.add.at(model_all, (np.clip(rows, 0, n_y - 1), xx), a[..., None] * p * inside)
+        bkg = np.sum(w_img * (image - model_all), 0) / np.maximum(w_img.sum(0), 1)
+        res = gather(image - model_all - bkg[None, :], rows)         # others and own
+        w = gather(w_img, rows) * inside
+        jac = np.stack([p, a[..., None] * dc, a[..., None] * ds], -1)
+        jw = jac * w[..., None]
+        lhs = np.einsum("kxwi,kxwj->kxij", jw, jac)
+        rhs = np.einsum("kxwi,kxw->kxi", jw, res)
+        diag = np.einsum("kxii->kxi", lhs)
+        lhs = lhs + (1e-3 * diag + 1e-12 * diag.max(-1, keepdims=True) + 1e-300)[..., None] \
+            * np.eye(3)
         step = np.linalg.solve(lhs, rhs[..., None])[..., 0]
-        a = a + step[:, :n_t]
-        c = c + np.clip(step[:, n_t:2 * n_t], -0.5, 0.5)
-        s = np.clip(s + np.clip(step[:, 2 * n_t:3 * n_t], -0.3, 0.3), 0.3, 5.0)
-        b = b + step[:, 3 * n_t]
-    return a.T, c.T, s.T
+        a = a + step[..., 0]
+        c = c + np.clip(step[..., 1], -0.5, 0.5)
+        s = np.clip(s + np.clip(step[..., 2], -0.3, 0.3), 0.3, 5.0)
+    return a, c, s
 
 
 def _robust_polyfit(x, values, weights, deg, *, clip=4.0, n_iter=4):
