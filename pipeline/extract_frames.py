@@ -41,7 +41,8 @@ def _blocks(dask_array):
 
 
 def sky_background(raw, *, frames_per_chunk: int = 16, kappa: float = 5.0) -> np.ndarray:
-    """Clipped mean (the master-dark estimator) of a sky exposure's frames, (y, x), ADU (bias and dark included)."""
+    """Clipped mean (the master-dark estimator) of a sky exposure's frames, (y, x), ADU
+    (bias, dark and sky included)."""
     pix = raw.science_pixels(frames_per_chunk)
     if raw.nframe < 2:
         raise BadInput(raw.path, "a sky background needs at least 2 frames")
@@ -95,6 +96,10 @@ def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, backgroun
     # a per-pixel noise map from a few dark frames is itself noisy: never go below the median
     typical = np.nanmedian(rn_e[good]) if good.any() else np.nanmedian(rn_e)
     rn_e = np.where(good, np.fmax(rn_e, typical), typical)
+    if background is not None:
+        # the subtracted sky's photons still add their Poisson noise to every frame
+        sky_e = np.where(good, np.clip((bg - master) * det.gain_e_per_adu, 0.0, None), 0.0)
+        rn_e = np.sqrt(rn_e ** 2 + sky_e)
     dit = raw.dit
     parts = {k: [] for k in ("flux", "flux_var", "coherent", "coherent_var", "n_rej")}
     for pix in _blocks(raw.science_pixels(frames_per_chunk)):
