@@ -57,7 +57,7 @@ def is_complete(path) -> bool:
     if not path.is_file():
         return False
     try:
-        with _H5_LOCK, h5py.File(path, "r") as f:
+        with _H5_LOCK, h5py.File(path, "r", locking=False) as f:
             return bool(f.attrs.get("complete", False))
     except (OSError, KeyError):
         return False
@@ -96,12 +96,10 @@ def _write_dataset(group, name: str, item):
                                     chunks=chunks if data.size else None,
                                     compression="gzip" if data.size else None,
                                     compression_opts=1 if data.size else None)
-        # Chunk by chunk, in this thread: memory stays one chunk whatever the size.
-        for block_index in np.ndindex(*data.numblocks):
-            block = np.asarray(data.blocks[block_index].compute(scheduler="synchronous"))
-            where = tuple(slice(sum(c[:i]), sum(c[:i]) + c[i])
-                          for c, i in zip(data.chunks, block_index))
-            dset[where] = block
+        # Chunk by chunk, in this thread (shared upstream work computed once): memory
+        # stays a few chunks whatever the size.
+        import dask.array as da
+        da.store(data, dset, lock=threading.Lock(), scheduler="synchronous")
     else:
         data = np.asarray(data)
         unicode = []
@@ -201,7 +199,7 @@ class ProductView:
 
     def _h5(self):
         if self._file is None:
-            self._file = h5py.File(self.path, "r")
+            self._file = h5py.File(self.path, "r", locking=False)   # immutable once renamed
         return self._file
 
     def close(self):
@@ -278,8 +276,10 @@ class ProductView:
             d = self._dset(name)
             chunks = d.chunks or d.shape
             shape, dtype = d.shape, d.dtype
+        from dask.base import tokenize
         return da.from_array(_H5Block(str(self.path), name, shape, dtype), chunks=chunks,
-                             asarray=False, name=f"product-{self.key}-{name}")
+                             asarray=False,
+                             name=f"product-{name}-" + tokenize(str(self.path), self.key, name))
 
 
 class _H5Block:
@@ -290,5 +290,5 @@ class _H5Block:
         self.ndim = len(self.shape)
 
     def __getitem__(self, index):
-        with _H5_LOCK, h5py.File(self.path, "r") as f:
+        with _H5_LOCK, h5py.File(self.path, "r", locking=False) as f:
             return f[self.name][index]
