@@ -40,6 +40,17 @@ def _blocks(dask_array):
         yield np.asarray(block.compute(scheduler="synchronous"), float)
 
 
+def _read_noise_map(rn, good, *, noisy_factor: float = 3.0):
+    """Per-pixel read noise to use: a noise map from a few dark frames is itself noisy
+    (its median is biased low, e.g. by sqrt(ln 2) ~ 0.83 for two frame pairs), so every
+    pixel gets the rms over usable pixels (an unbiased variance), except pixels
+    ``noisy_factor`` times noisier, which keep their own."""
+    sel = good & np.isfinite(rn)
+    r2 = np.sort(rn[sel] ** 2) if sel.any() else np.sort(rn[np.isfinite(rn)] ** 2)
+    typical = np.sqrt(r2[: max(1, int(0.995 * r2.size))].mean())    # trim the noisiest 0.5 %
+    return np.where(np.isfinite(rn) & (rn > noisy_factor * typical), rn, typical)
+
+
 def sky_background(raw, *, frames_per_chunk: int = 16, kappa: float = 5.0) -> np.ndarray:
     """Clipped mean (the master-dark estimator) of a sky exposure's frames, (y, x), ADU
     (bias, dark and sky included)."""
@@ -50,7 +61,8 @@ def sky_background(raw, *, frames_per_chunk: int = 16, kappa: float = 5.0) -> np
 
 
 def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, background=None,
-                    frames_per_chunk: int = 8, clip: float = 6.0) -> dict:
+                    background_frames: int | None = None, frames_per_chunk: int = 8,
+                    clip: float = 6.0) -> dict:
     """Fluxes and coherent fluxes of every science frame of ``raw``.
 
     Parameters
@@ -60,6 +72,11 @@ def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, backgroun
     instrument : pipeline.instrument.Instrument
     background : ndarray (y, x), ADU, or None
         Sky background (:func:`sky_background`); None subtracts the master dark.
+    background_frames : int or None
+        Frames averaged into ``background`` (default: the dark's ``n_frame``
+        attribute when ``background`` is None). The noise of the subtracted
+        image is the same in every frame, so it does not average down over
+        frames: it is added to each frame's variance (it biases |C|^2 alike).
     frames_per_chunk : int, frames extracted at once
     clip : float, cosmic-ray rejection threshold of the optimal extraction, sigmas
 
@@ -93,13 +110,15 @@ def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, backgroun
                        f"and wave_pixel {wave_pixel.shape}")
     profiles = trace_profiles(trace_y, np.asarray(flat["profile_sigma"], float),
                               n_y=master.shape[0])
-    # a per-pixel noise map from a few dark frames is itself noisy: never go below the median
-    typical = np.nanmedian(rn_e[good]) if good.any() else np.nanmedian(rn_e)
-    rn_e = np.where(good, np.fmax(rn_e, typical), typical)
+    rn_e = _read_noise_map(rn_e, good)
+    sky_e = 0.0
     if background is not None:
         # the subtracted sky's photons still add their Poisson noise to every frame
         sky_e = np.where(good, np.clip((bg - master) * det.gain_e_per_adu, 0.0, None), 0.0)
-        rn_e = np.sqrt(rn_e ** 2 + sky_e)
+    n_bg = background_frames if background is not None else getattr(dark, "attrs", {}).get(
+        "n_frame")
+    # per-pixel noise of one frame, plus that of the subtracted background image
+    rn_e = np.sqrt((rn_e ** 2 + sky_e) * (1.0 + (1.0 / n_bg if n_bg else 0.0)))
     dit = raw.dit
     parts = {k: [] for k in ("flux", "flux_var", "coherent", "coherent_var", "n_rej")}
     for pix in _blocks(raw.science_pixels(frames_per_chunk)):
@@ -136,7 +155,7 @@ def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, backgroun
 
 def _ft_block(counts, dark, rn, p2vm, *, gain, period, part):
     rate, var = counts_to_rate(counts, dark, gain_e_per_adu=gain, read_noise_adu=rn,
-                               dit_s=period)
+                               dit_s=period, poisson="mean")
     res = invert_combiner(rate[:, None], p2vm, variance=var[:, None], nan_policy="propagate")
     if part == "flux":
         return res.flux[:, 0].astype(np.float32)

@@ -60,6 +60,7 @@ def run(inputs, params: ExtractParams) -> dict:
     out = extract_science(raw, dark=prods["dark"], flat=prods["flat"], wavecal=prods["wavecal"],
                           combiner=prods["combiner"], instrument=inst,
                           background=sky_background(sky) if sky is not None else None,
+                          background_frames=sky.nframe if sky is not None else None,
                           frames_per_chunk=params.frames_per_chunk, clip=params.clip)
     ft_comb = prods["ft_combiner"]
     ft_wave = (ft_comb["wave"] if "wave" in ft_comb else prods["ft_wavecal"]["wave_grid"]

@@ -70,7 +70,10 @@ def expected_phasor(ext, instrument, file_truth, night_truth):
 
 class Product(dict):
     """A stand-in product: arrays by name plus attributes."""
-    attrs: dict = {}
+
+    def __init__(self, *args, attrs=None, **kw):
+        super().__init__(*args, **kw)
+        self.attrs = dict(attrs or {})
 
 
 def calibrated_night(night, instrument):
@@ -83,7 +86,8 @@ def calibrated_night(night, instrument):
     def run_dark(meta, recs):
         out = dark.run(Inputs(Unit("d", meta=meta), [RawExposure(r.path) for r in recs], {},
                               instrument), dark.DarkParams())
-        return Product({k: out[k].data for k in ("master", "read_noise", "valid")})
+        return Product({k: out[k].data for k in ("master", "read_noise", "valid")},
+                       attrs={"n_frame": out["n_frame"]})
 
     sci_dark = run_dark({"channel": "sci", "dit": 0.1}, [r for r in darks if r.dit == 0.1])
     ft_dark = run_dark({"channel": "ft", "period": 0.001}, darks)
@@ -158,6 +162,26 @@ def test_extract_product_contents(calibrator):
     # times and metrology copied from the raw file (docs/raw_format.md: 1 ms FT frames)
     np.testing.assert_allclose(np.diff(ext["ft_time"]), 1e-3, rtol=1e-6)
     assert ext["metrology_path"].shape[1] == 4 and ext["station_enu"].shape == (4, 3)
+
+
+def test_noise_is_honest_on_sky(night, instrument):
+    """A sky exposure has no fringes: its coherent fluxes are pure noise, so their scatter
+    must equal the propagated variance (detector noise through optimal extraction,
+    resampling and the P2VM, plus the noise of the subtracted master dark)."""
+    inv = night["inv"]
+    rec = inv.select("sky")[0]
+    unit = [x for x in extract.plan(inv, extract.ExtractParams(), upstream_units(inv))
+            if x.label == rec.name][0]
+    out = extract.run(Inputs(unit, [RawExposure(p) for p in unit.raw], night["products"],
+                             instrument), extract.ExtractParams())
+    c, v = out["coherent"].data, out["coherent_var"].data
+    z = np.concatenate([(c.real / np.sqrt(v)).ravel(), (c.imag / np.sqrt(v)).ravel()])
+    # 1056 values, neighbouring wavelengths correlated by the resampling (effective number
+    # ~ half): the standard error of their std is ~3 %, so [0.9, 1.1] is > 3 sigma
+    assert 0.9 < z.std() < 1.1, z.std()
+    fc, fv = out["ft_coherent"].data.compute(), out["ft_coherent_var"].data.compute()
+    zf = np.concatenate([(fc.real / np.sqrt(fv)).ravel(), (fc.imag / np.sqrt(fv)).ravel()])
+    assert 0.96 < zf.std() < 1.04, zf.std()            # 28800 values: +-1 % is 1 sigma
 
 
 def test_contrast_loss_matches_truth(calibrator):

@@ -105,6 +105,20 @@ def test_counts_to_rate_noise_model():
     np.testing.assert_allclose(var, [(200 + 36) / 0.25, 36 / 0.25])
 
 
+def test_counts_to_rate_mean_poisson(rng):
+    # pure read noise (1 e-): the variance of the values is 1 e-^2; the per-frame
+    # Poisson term max(e, 0) would add E[max(e, 0)] = 1/sqrt(2 pi) ~ 0.4 (half-normal mean)
+    counts = 500.0 + rng.standard_normal((20000, 3))
+    _, var_f = counts_to_rate(counts, 500.0, gain_e_per_adu=1.0, read_noise_adu=1.0, dit_s=1.0)
+    _, var_m = counts_to_rate(counts, 500.0, gain_e_per_adu=1.0, read_noise_adu=1.0, dit_s=1.0,
+                              poisson="mean")
+    assert var_f.mean() == pytest.approx(1 + 1 / np.sqrt(2 * np.pi), rel=0.02)
+    assert var_m.mean() == pytest.approx(1.0, abs=0.02)   # mean of 20000 values ~ +-0.007
+    with pytest.raises(ValueError, match="poisson"):
+        counts_to_rate(counts, 0.0, gain_e_per_adu=1.0, read_noise_adu=1.0, dit_s=1.0,
+                       poisson="median")
+
+
 def test_nan_policy(rng):
     v2pm = true_v2pm(rng, 1, 2)
     p2vm = np.linalg.pinv(v2pm)
