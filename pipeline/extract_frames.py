@@ -232,5 +232,6 @@ def exposure_facts(raw, instrument) -> dict:
             "ft_ra_deg": float(h["FTRA"]), "ft_dec_deg": float(h["FTDEC"]),
             "stations": ",".join(stations)})
         if raw.kind == "calibrator":
-            out.update({"caldiam_mas": float(h["CALDIAM"]), "caldiam_err_mas": float(h["CALDIAME"])})
+            out.update({"caldiam_mas": float(h["CALDIAM"]),
+                        "caldiam_err_mas": float(h["CALDIAME"])})
     return out

@@ -73,7 +73,8 @@ class FringeEstimates:
     wave_ref: float
 
 
-def fringe_estimates(ft_coherent, ft_wave, *, ft_coherent_var, n_refine: int = 2) -> FringeEstimates:
+def fringe_estimates(ft_coherent, ft_wave, *, ft_coherent_var,
+                     n_refine: int = 2) -> FringeEstimates:
     """Group delay, phase and SNR of every FT frame and baseline.
 
     Parameters

@@ -198,7 +198,8 @@ def test_flux_weighted_phasor(rng):
     got = mean_phasor(opd, lo, hi, wave, flux=flux, baselines=[(0, 1)])
     for f, (a, b) in enumerate(zip(lo, hi)):
         for w, lam in enumerate(wave):
-            num = np.mean(np.sqrt(flux[a:b, 0] * flux[a:b, 1]) * np.exp(-2j * np.pi * opd[a:b, 0] / lam))
+            amp = np.sqrt(flux[a:b, 0] * flux[a:b, 1])
+            num = np.mean(amp * np.exp(-2j * np.pi * opd[a:b, 0] / lam))
             direct = num / np.sqrt(flux[a:b, 0].mean() * flux[a:b, 1].mean())
             assert got[f, 0, w] == pytest.approx(direct, rel=1e-12)
     plain = mean_phasor(opd, lo, hi, wave)
