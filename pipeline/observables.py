@@ -87,10 +87,20 @@ def average_product(extract, reference, header, instrument, *, label: str, n_boo
             if use_contrast_loss and "contrast_loss" in reference else None)
     wave = np.asarray(extract["wave"], float)
     s = exposure_seed(label, seed)
+    # optional: the variance of errors common to every frame (subtracted background),
+    # included in coherent_var / flux_var; propagated separately (the bootstrap cannot)
+    s2 = np.asarray(extract["coherent_var"], float)
+    vc = vf = None
+    if "coherent_var_common" in extract:
+        vc = np.asarray(extract["coherent_var_common"], float)
+        s2 = np.clip(s2 - vc[None], 0.0, None)
+    if "flux_var_common" in extract:
+        vf = np.asarray(extract["flux_var_common"], float)
+    raw = extract["coherent"] if "coherent" in extract else None
     try:
-        res = average_exposure(coherent, extract["coherent_var"], extract["flux"],
-                               frame_valid=valid, contrast_loss=loss, n_boot=n_boot, seed=s,
-                               nan_policy="omit")
+        res = average_exposure(coherent, s2, extract["flux"], frame_valid=valid,
+                               contrast_loss=loss, coherent_raw=raw, coherent_var_common=vc,
+                               flux_var_common=vf, n_boot=n_boot, seed=s, nan_policy="omit")
     except ValueError as exc:
         raise BadInput(getattr(reference, "path", label), str(exc)) from None
     start, exp = np.asarray(extract["frame_start"], float), np.asarray(extract["frame_exp"], float)

@@ -127,7 +127,9 @@ def _sums(weights, x):
 
 
 def average_exposure(coherent, coherent_var, flux, *, frame_valid=None, contrast_loss=None,
-                     flux_var=None, debias: bool = True, n_boot: int = 200, seed: int = 0,
+                     flux_var=None, coherent_raw=None, coherent_var_common=None,
+                     flux_var_common=None, debias: bool = True, n_boot: int = 200,
+                     seed: int = 0,
                      nan_policy: Literal["raise", "omit"] = "raise") -> ExposureAverage:
     """Average one exposure's frames into V2, closure phases, referenced
     visibilities and photometry, with bootstrap errors.
@@ -147,6 +149,16 @@ def average_exposure(coherent, coherent_var, flux, *, frame_valid=None, contrast
         taken as uncorrected for it and the loss enters the normalisation.
     flux_var : ndarray, like ``flux``, optional; unused by the estimators
         (photometric errors come from the bootstrap), accepted for symmetry.
+    coherent_raw : ndarray, like ``coherent``, optional
+        The coherent fluxes before referencing (``extract`` product ``coherent``),
+        needed to propagate ``coherent_var_common``; default: ``coherent``.
+    coherent_var_common : ndarray, shape (n_pol, 6, n_wave), optional
+        Variance of each real part of an error common to every frame of the
+        exposure (the subtracted background's own noise). The bootstrap over
+        frames cannot see it; it is propagated to first order and added to the
+        variances (diagonals of the covariances), and it enters the V2 bias.
+    flux_var_common : ndarray, shape (n_pol, 4, n_wave), optional
+        The same for the photometric fluxes.
     debias : bool
         Subtract the 2 s2 noise term from |C|^2 (True) or not (for diagnostics).
     n_boot : int, number of bootstrap resamples (>= 2)
@@ -200,7 +212,10 @@ def average_exposure(coherent, coherent_var, flux, *, frame_valid=None, contrast
     loz = np.where(w, lo, 0.0)
 
     # per-frame terms, stacked on a trailing "term" axis of the V2/vis part
-    num2 = np.abs(cz) ** 2 - (2 * s2z if debias else 0.0)
+    vc = (np.zeros((n_pol, n_base, n_wave)) if coherent_var_common is None
+          else np.broadcast_to(np.asarray(coherent_var_common, float), (n_pol, n_base, n_wave)))
+    s2c = np.where(w, s2 + vc, 0.0)       # frame noise plus the common part (bias)
+    num2 = np.abs(cz) ** 2 - (2 * s2c if debias else 0.0)
     den2 = loz ** 2 * ffz
     sqff = loz * np.sqrt(np.clip(ffz, 0, None))
 
@@ -261,13 +276,69 @@ def average_exposure(coherent, coherent_var, flux, *, frame_valid=None, contrast
         d = (d - d.mean(axis=0)) * np.sqrt(g)
         return np.einsum("bpkw,bpkv->pkwv", d, d) / (n_boot - 1)
 
+    raw = c if coherent_raw is None else np.asarray(coherent_raw)
+    if raw.shape != c.shape:
+        raise ValueError(f"coherent_raw shape {raw.shape} differs from coherent {c.shape}")
+    vf = (np.zeros((n_pol, 4, n_wave)) if flux_var_common is None
+          else np.broadcast_to(np.asarray(flux_var_common, float), (n_pol, 4, n_wave)))
+    extra = _common_mode(np.where(w, raw, 0), cz, w, wt, vc, vf, f, loz, v2[0], visamp[0],
+                         tri=(tri_ij, tri_jk, tri_ik), b_norm=b_norm, sb=sb[0],
+                         ssq=ssq[0], den=_sums(weights[:1], den2)[0])
+
+    def add_diag(cv, var):
+        return cv + np.eye(cv.shape[-1]) * var[..., None]
+
+    def tot(e, var):
+        return np.sqrt(e ** 2 + var)
+
+    e_v2, e_phi, e_t3 = err(v2, g_base), err(visphi, g_base, True), err(t3phi, g_tri, True)
     return ExposureAverage(
-        vis2=v2[0], vis2_err=err(v2, g_base), vis2_cov=cov(v2, g_base),
-        t3phi=t3phi[0], t3phi_err=err(t3phi, g_tri, True),
-        t3phi_cov=cov(t3phi, g_tri, True),
-        t3amp=t3amp[0], t3amp_err=err(t3amp, g_tri),
-        visamp=visamp[0], visamp_err=err(visamp, g_base),
-        visphi=visphi[0], visphi_err=err(visphi, g_base, True),
-        visphi_cov=cov(visphi, g_base, True),
-        flux=fl[0], flux_err=err(fl, g_tel),
+        vis2=v2[0], vis2_err=tot(e_v2, extra["vis2"]),
+        vis2_cov=add_diag(cov(v2, g_base), extra["vis2"]),
+        t3phi=t3phi[0], t3phi_err=tot(e_t3, extra["t3phi"]),
+        t3phi_cov=add_diag(cov(t3phi, g_tri, True), extra["t3phi"]),
+        t3amp=t3amp[0], t3amp_err=tot(err(t3amp, g_tri), extra["t3amp"]),
+        visamp=visamp[0], visamp_err=tot(err(visamp, g_base), extra["visamp"]),
+        visphi=visphi[0], visphi_err=tot(e_phi, extra["visphi"]),
+        visphi_cov=add_diag(cov(visphi, g_base, True), extra["visphi"]),
+        flux=fl[0], flux_err=tot(err(fl, g_tel), vf),
         n_valid=valid.sum(axis=0).astype(int), n_boot=int(n_boot), seed=int(seed))
+
+
+def _common_mode(raw, ref, w, wt, vc, vf, f, loss, vis2, visamp, *, tri, b_norm, sb, ssq, den):
+    """First-order variances from errors common to every frame (full sample).
+
+    A common complex error d (variance ``vc`` per real part) on the raw coherent
+    flux of a baseline changes sum_f |C_f|^2 by 2 Re(d* sum_f C_f), the referenced
+    sum by d sum_f u_f (u_f = C_ref,f / C_raw,f, the referencing rotation) and
+    the bispectrum sum by d_ij sum_f C_jk C_ik* + ...; a common error on F_i
+    changes sum_f L^2 F_i F_j by d_i sum_f L^2 F_j.
+    """
+    ii = np.array([b[0] for b in BASELINES])
+    jj = np.array([b[1] for b in BASELINES])
+    s_raw = raw.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        u = np.where(np.abs(raw) > 0, ref / np.where(raw == 0, 1, raw), 0)
+        su = np.abs(u.sum(axis=0)) ** 2
+        fz = np.where(w, f[:, :, jj], 0.0), np.where(w, f[:, :, ii], 0.0)
+        dfi = (loss ** 2 * fz[0]).sum(axis=0)        # d D / d F_i
+        dfj = (loss ** 2 * fz[1]).sum(axis=0)
+        v_v2 = (4 * vc * np.abs(s_raw) ** 2 / den ** 2
+                + (vis2 / den) ** 2 * (vf[:, ii] * dfi ** 2 + vf[:, jj] * dfj ** 2))
+        s_ref = np.abs(ref.sum(axis=0)) ** 2
+        v_phi = vc * su / s_ref
+        fbar = np.where(w, f[:, :, ii], 0).sum(0), np.where(w, f[:, :, jj], 0).sum(0)
+        nw = w.sum(axis=0)
+        v_amp = (vc * su / ssq ** 2 + (visamp / 2) ** 2
+                 * (vf[:, ii] / (fbar[0] / nw) ** 2 + vf[:, jj] / (fbar[1] / nw) ** 2))
+        a, b, c = tri
+        rt = wt.astype(float)
+        cij, cjk, cik = raw[:, :, a] * rt, raw[:, :, b] * rt, raw[:, :, c] * rt
+        perp = (vc[:, a] * np.abs((cjk * np.conj(cik)).sum(0)) ** 2
+                + vc[:, b] * np.abs((cij * np.conj(cik)).sum(0)) ** 2
+                + vc[:, c] * np.abs((cij * cjk).sum(0)) ** 2)
+        v_t3 = perp / np.abs((cij * cjk * np.conj(cik)).sum(0)) ** 2
+        v_t3a = perp / b_norm.sum(axis=0) ** 2
+    return {k: np.where(np.isfinite(v), v, 0.0) for k, v in
+            {"vis2": v_v2, "visphi": v_phi, "visamp": v_amp, "t3phi": v_t3,
+             "t3amp": v_t3a}.items()}
