@@ -70,14 +70,19 @@ def observables_from_product(view, *, use_phases: bool = True, n_draw: int = 0,
 
 
 def binary_product(view, instrument, *, exposure: str, search_radius_mas: float | None,
-                   fit_kw: dict, use_phases: bool = True, n_boot: int = 50, seed: int = 0) -> dict:
-    """Fit one calibrated exposure; returns the ``binary`` product's outputs."""
+                   fit_kw: dict, use_phases: bool = True, n_boot: int = 50, seed: int = 0,
+                   pointing_sigma_mas: tuple = (0.0, 0.0)) -> dict:
+    """Fit one calibrated exposure; returns the ``binary`` product's outputs.
+
+    ``pointing_sigma_mas``: uncertainty of the pair's place in the fibre without and with
+    calibrated referenced phases (see ``fit_binary``)."""
     obs = observables_from_product(view, use_phases=use_phases, n_draw=n_boot, seed=seed)
     fibre = float(instrument.fibre_fwhm_mas_at_2p2um)
     radius = fibre if search_radius_mas is None else float(search_radius_mas)
     try:
         res = fit_binary(obs, fibre_fwhm_mas=fibre, search_radius_mas=radius, n_boot=n_boot,
-                         seed=seed, **fit_kw)
+                         seed=seed, pointing_sigma_mas=pointing_sigma_mas[int(obs.has_phase)],
+                         **fit_kw)
     except FitFailed as exc:
         raise BadInput(getattr(view, "path", "?"), str(exc)) from None
     p = json.loads(res.params_json)

@@ -23,8 +23,10 @@ class BinaryParams:
     fit_diameter1: bool = False      # fit the primary's diameter
     fit_diameter2: bool = False      # fit the companion's diameter
     use_phases: bool = True          # fit calibrated referenced phases (primary offset)
-    pointing_sigma_mas: float = 2.0  # mas, 1-sigma (per axis) of the pair's place in the fibre
-                                     # (assumed pointing accuracy): enters flux_ratio_err
+    pointing_sigma_mas: float = 2.0  # mas, 1-sigma per axis of the pair's place in the fibre
+                                     # (assumed pointing accuracy); enters flux_ratio_err
+    phase_pointing_sigma_mas: float = 0.7  # mas, the same with referenced phases (the
+                                     # calibrators' pointing: their phase zero-point)
     n_start: int = 5                 # grid minima refined with lmfit
     n_boot: int = 50                 # bootstrap refits (0 = covariance errors only)
     search_max_channels: int = 32    # channels used by the grid search
@@ -42,8 +44,8 @@ class BinaryParams:
         if self.n_start < 1 or self.n_boot < 0 or self.search_max_channels < 4:
             raise ValueError(f"need n_start >= 1, n_boot >= 0, search_max_channels >= 4; found "
                              f"{self.n_start}, {self.n_boot}, {self.search_max_channels}")
-        if self.pointing_sigma_mas < 0:
-            raise ValueError(f"pointing_sigma_mas must be >= 0, found {self.pointing_sigma_mas}")
+        if min(self.pointing_sigma_mas, self.phase_pointing_sigma_mas) < 0:
+            raise ValueError("pointing_sigma_mas and phase_pointing_sigma_mas must be >= 0")
         if not 0 <= self.chi2_red_min < 1 < self.chi2_red_max or self.ambiguous_dchi2 < 0:
             raise ValueError("need 0 <= chi2_red_min < 1 < chi2_red_max, ambiguous_dchi2 >= 0")
 
@@ -58,7 +60,6 @@ def run(inputs, params: BinaryParams) -> dict:
     fit_kw = dict(step_fraction=p.step_fraction, flux_ratio_max=p.flux_ratio_max,
                   fit_slope=p.fit_slope, diameters_mas=(p.diameter1_mas, p.diameter2_mas),
                   fit_diameters=(p.fit_diameter1, p.fit_diameter2),
-                  pointing_sigma_mas=p.pointing_sigma_mas,
                   n_start=p.n_start, search_max_channels=p.search_max_channels,
                   ambiguous_dchi2=p.ambiguous_dchi2,
                   chi2_red_range=(p.chi2_red_min, p.chi2_red_max))
@@ -67,6 +68,7 @@ def run(inputs, params: BinaryParams) -> dict:
     return binary_product(inputs.products["calibrated"], inputs.instrument, exposure=exposure,
                           search_radius_mas=p.search_radius_mas or None, fit_kw=fit_kw,
                           use_phases=p.use_phases, n_boot=p.n_boot,
+                          pointing_sigma_mas=(p.pointing_sigma_mas, p.phase_pointing_sigma_mas),
                           seed=(zlib.crc32(label.encode()) + p.seed) % 2 ** 32)
 
 

@@ -89,7 +89,7 @@ def test_binary_product_recovers_truth(night):
         # 3-sigma ellipse: Mahalanobis d^2 < 11.8 (chi-square, 2 dof, 99.73 %; table value).
         assert d @ np.linalg.solve(cov, d) < 11.8
         assert abs(a["primary_dra"] - TRUTH["x1"]) < 3 * a["primary_dra_err"]
-        assert a["bootstrap_kind"] == "covariance" and a["has_phase"]
+        assert a["bootstrap_kind"] == "covariance+channels" and a["has_phase"]
         assert json.loads(a["lmfit_params"])["dra"]["vary"] is True
         assert v["chi2_map"].shape == (v["grid_ddec"].size, v["grid_dra"].size)
 

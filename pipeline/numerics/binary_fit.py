@@ -15,16 +15,17 @@ is the approach of e.g. Le Bouquin & Absil 2012, A&A 541, A89 (chi-square maps o
 companion searches with interferometric closure phases and V2).
 
 Errors. The lmfit covariance (from the Jacobian at the optimum) is scaled by
-chi2_red when chi2_red > 1. A bootstrap gives a second covariance: over frames if
-bootstrap realisations of the observables are supplied (``vis2_boot`` ...), else
+chi2_red when chi2_red > 1. Bootstraps give further covariances: over frames when
+realisations of the observables are supplied (``vis2_boot`` ...; realisations
+drawn from the frame-bootstrap covariance between channels,
+``pipeline.numerics.correlated_draws``, are labelled "covariance"), and always
 over spectral channels (each resample draws channels with replacement, keeping
 every baseline and triangle of a channel together; Efron & Tibshirani 1993, An
-Introduction to the Bootstrap, ch. 6). Realisations drawn from the frame-bootstrap
-covariance between channels (``pipeline.numerics.correlated_draws``) are labelled
-"covariance".
-The larger of the two covariances (by the trace of the position block) is
-reported; likewise for the primary's offset, and the flux-ratio error is the
-larger of the two.
+Introduction to the Bootstrap, ch. 6), which also sees residual errors correlated
+between channels that the quoted errors miss. The largest covariance (by the trace
+of the position block) is reported; likewise for the primary's offset, and every
+other error is the largest of the estimates. The flux-ratio error adds the
+uncertainty of the pair's place in the fibre (``pointing_sigma_mas``).
 
 Assumption: without referenced phases the primary is taken at the science
 fibre's centre (the commanded pointing) for the fibre attenuation and the
@@ -44,6 +45,7 @@ Flags (bit mask, :data:`FLAGS`):
 from __future__ import annotations
 
 import json
+import warnings
 from dataclasses import dataclass, field
 from typing import Literal
 
@@ -148,9 +150,9 @@ class BinaryFitResult:
     runner_up_ddec: float
     runner_up_dchi2: float                # raw chi-square difference, NaN if none
     cov_fit: np.ndarray                   # (2, 2) scaled lmfit covariance
-    cov_boot: np.ndarray                  # (2, 2) bootstrap covariance
-    error_source: str                     # "fit" or "bootstrap"
-    bootstrap_kind: str                   # "frames", "channels" or "none"
+    cov_boot: np.ndarray                  # (2, 2) larger bootstrap covariance
+    error_source: str                     # estimate reported: "fit", "channels", "frames"...
+    bootstrap_kind: str                   # bootstraps run, e.g. "covariance+channels"
     n_boot: int
     grid_dra: np.ndarray                  # (n_x,) mas
     grid_ddec: np.ndarray                 # (n_y,) mas
@@ -369,21 +371,20 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
                 if ia is not None and ib is not None:
                     cov_fit_full[a, b] = best.covar[ia, ib] * scale
 
-    kind, samples = _bootstrap(obs, residual_kw=dict(fibre_fwhm_mas=fibre_fwhm_mas),
-                               start=bp, n_boot=n_boot, mode=bootstrap, seed=seed, names=names)
-    cov_boot_full = (np.cov(samples, rowvar=False) if len(samples) > 2
-                     else np.full((7, 7), np.nan))
+    boots = _bootstrap(obs, residual_kw=dict(fibre_fwhm_mas=fibre_fwhm_mas), start=bp,
+                       n_boot=n_boot, mode=bootstrap, seed=seed, names=names)
+    estimates = {"fit": cov_fit_full}
+    estimates.update({k: np.cov(v, rowvar=False) for k, v in boots.items() if len(v) > 2})
+    source, cov_full = _largest(estimates, slice(0, 2))
+    cov = cov_full[:2, :2]
+    boot_src, cov_boot_full = (_largest({k: v for k, v in estimates.items() if k != "fit"},
+                                        slice(0, 2)) if len(estimates) > 1
+                               else ("none", np.full((7, 7), np.nan)))
     pos_fit, pos_boot = cov_fit_full[:2, :2], cov_boot_full[:2, :2]
-    use_boot = (not np.all(np.isfinite(pos_fit))
-                or (np.all(np.isfinite(pos_boot)) and np.trace(pos_boot) > np.trace(pos_fit)))
-    cov = (cov_boot_full if use_boot else cov_fit_full)[:2, :2]
-    # Every other error: the larger of the two estimates (block by block).
-    prim_fit, prim_boot = cov_fit_full[3:5, 3:5], cov_boot_full[3:5, 3:5]
-    prim = (prim_boot if not np.all(np.isfinite(prim_fit)) or
-            (np.all(np.isfinite(prim_boot)) and np.trace(prim_boot) > np.trace(prim_fit))
-            else prim_fit)
-    with np.errstate(invalid="ignore"):
-        other = np.fmax(np.sqrt(np.diag(cov_fit_full)), np.sqrt(np.diag(cov_boot_full)))
+    prim = _largest(estimates, slice(3, 5))[1][3:5, 3:5]
+    with warnings.catch_warnings():           # every other error: the largest estimate
+        warnings.simplefilter("ignore", RuntimeWarning)      # all-NaN: fixed parameters
+        other = np.sqrt(np.nanmax([np.diag(c) for c in estimates.values()], axis=0))
     err = np.concatenate([np.sqrt(np.diag(cov)), other[2:3], np.sqrt(np.diag(prim)), other[5:]])
     ratio_err = float(err[2])
     # The on-sky ratio divides out the fibre attenuation of both stars: a common shift
@@ -425,35 +426,52 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
         runner_up_dra=float(runner.params["dra"].value) if runner is not None else nan,
         runner_up_ddec=float(runner.params["ddec"].value) if runner is not None else nan,
         runner_up_dchi2=dchi2, cov_fit=pos_fit, cov_boot=pos_boot,
-        error_source="bootstrap" if use_boot else "fit", bootstrap_kind=kind,
-        n_boot=len(samples), grid_dra=gx, grid_ddec=gy, chi2_map=chi2_map, minima=minima,
+        error_source=source, bootstrap_kind="+".join(boots) or "none",
+        n_boot=max((len(v) for v in boots.values()), default=0), grid_dra=gx, grid_ddec=gy, chi2_map=chi2_map, minima=minima,
         params_json=params_to_json(bp), flag_names=tuple(k for k, b in FLAGS.items() if flag & b))
 
 
+def _largest(estimates, block):
+    """(name, covariance) of the estimate with the largest finite trace over ``block``
+    (the first estimate when none is finite)."""
+    items = list(estimates.items())
+    finite = [(np.trace(c[block, block]), k, c) for k, c in items
+              if np.all(np.isfinite(c[block, block]))]
+    if not finite:
+        return items[0]
+    _, name, cov = max(finite, key=lambda t: t[0])
+    return name, cov
+
+
 def _bootstrap(obs, *, residual_kw, start, n_boot, mode, seed, names):
-    """Refit bootstrap realisations from the best fit; returns (kind, samples (n, 5))."""
+    """Refits of bootstrap realisations from the best fit: {kind: samples (n, n_names)}.
+
+    "auto": the supplied realisations (``obs.boot_kind``) when present, and always a
+    resampling of spectral channels (which also sees errors correlated between
+    channels that the quoted errors miss)."""
     if n_boot <= 0 or mode == "none":
-        return "none", np.empty((0, len(names)))
+        return {}
     nw = len(obs.wave)
-    out = []
+    out = {}
     if obs.has_boot and mode == "auto":
-        kind = obs.boot_kind
+        fits = []
         for b in range(min(n_boot, len(obs.vis2_boot))):
             res, _ = make_residual(
                 obs, vis2=obs.vis2_boot[b], t3phi=obs.t3phi_boot[b],
                 visphi=None if obs.visphi is None else (
                     obs.visphi_boot[b] if obs.visphi_boot is not None else obs.visphi),
                 weight=np.ones(nw), **residual_kw)
-            out.append(_refine(res, start.copy()).params)
-    else:
-        kind = "channels"
-        rng = np.random.default_rng(seed)
-        for _ in range(n_boot):
-            weight = np.bincount(rng.integers(0, nw, nw), minlength=nw).astype(float)
-            res, _ = make_residual(obs, vis2=obs.vis2, t3phi=obs.t3phi, visphi=obs.visphi,
-                                       weight=weight, **residual_kw)
-            out.append(_refine(res, start.copy()).params)
-    return kind, np.array([[p[n].value for n in names] for p in out])
+            fits.append(_refine(res, start.copy()).params)
+        out[obs.boot_kind] = np.array([[p[n].value for n in names] for p in fits])
+    rng = np.random.default_rng(seed)
+    fits = []
+    for _ in range(n_boot):
+        weight = np.bincount(rng.integers(0, nw, nw), minlength=nw).astype(float)
+        res, _ = make_residual(obs, vis2=obs.vis2, t3phi=obs.t3phi, visphi=obs.visphi,
+                               weight=weight, **residual_kw)
+        fits.append(_refine(res, start.copy()).params)
+    out["channels"] = np.array([[p[n].value for n in names] for p in fits])
+    return out
 
 
 def params_to_json(params) -> str:

@@ -152,7 +152,7 @@ def test_referenced_phase_gives_primary_offset_and_slope(uvw, rng):
 def test_frame_bootstrap_and_chi2_flag(uvw, rng):
     obs = synth(uvw, rng, dra=9.0, ddec=3.0, ratio=0.3, n_boot=15)
     res = fit_binary(obs, fibre_fwhm_mas=FIBRE, search_radius_mas=15.0, n_boot=15)
-    assert res.bootstrap_kind == "frames" and res.n_boot == 15
+    assert res.bootstrap_kind == "frames+channels" and res.n_boot == 15
     # Honest errors: bootstrap and covariance areas agree within a factor ~2 with 15
     # realisations (the variance of a 15-sample variance is ~ 2/14 ~ 40 %).
     ratio = np.sqrt(np.linalg.det(res.cov_boot) / np.linalg.det(res.cov_fit))
