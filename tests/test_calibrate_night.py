@@ -16,6 +16,8 @@ import pytest
 
 from pipeline.skymodel import MAS, binary_visibility
 
+pytestmark = pytest.mark.slow
+
 
 def _stages():
     import recipes
