@@ -214,12 +214,17 @@ def ft_mean_counts(raw, ft_dark, *, instrument):
 
 # -- wavelengths ----------------------------------------------------------------------------
 
-def _bandwidth_law(bw, bw_err, law, *, max_rel_err=0.02):
+def _bandwidth_law(bw, bw_err, law, *, max_rel_err=0.02, decay=None, min_decay=0.01):
     """Per-trace LSF FWHM in pixels from the measured bandwidths; traces whose own
-    measurement is poorer than ``max_rel_err`` adopt the median of the others."""
+    measurement is poorer than ``max_rel_err``, or whose scan covers too little of the
+    envelope (``decay``, the fractional envelope drop at the largest OPD fitted, below
+    ``min_decay``), adopt the median of the others."""
     disp = np.abs(np.gradient(law, axis=1))                        # m / px
     fw = bw / disp
-    w = np.where(np.isfinite(fw) & np.isfinite(bw_err) & (bw_err > 0), (disp / bw_err) ** 2, 0.0)
+    ok = np.isfinite(fw) & np.isfinite(bw_err) & (bw_err > 0)
+    if decay is not None:
+        ok &= np.asarray(decay) >= min_decay
+    w = np.where(ok, (disp / bw_err) ** 2, 0.0)
     wsum = w.sum(1)
     mean = np.where(wsum > 0, (w * np.nan_to_num(fw)).sum(1) / np.maximum(wsum, 1e-300), np.nan)
     rel = 1 / np.sqrt(np.maximum(wsum, 1e-300)) / np.where(np.isfinite(mean), mean, 1.0)
@@ -232,7 +237,8 @@ def _bandwidth_law(bw, bw_err, law, *, max_rel_err=0.02):
 
 
 def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trace", "x"),
-                     min_snr=5.0, max_bw_rel_err=0.02, max_opd=None) -> dict:
+                     min_snr=5.0, max_bw_rel_err=0.02, max_opd=None,
+                     min_envelope_decay=0.0) -> dict:
     """Wavelength products of a channel from scan intensities (frame, trace, x);
     ``max_opd`` (m, broadcastable to (trace, x)) limits the fit to the central packet."""
     ok = np.isfinite(intensity)
@@ -242,8 +248,14 @@ def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trac
                           max_opd=max_opd)
     wave = np.where(dead, np.nan, fit.wave)
     law, coeffs, used, x_ref, x_scale = fit_dispersion_law(wave, fit.wave_err, deg=law_deg)
+    o = np.abs(np.broadcast_to(opd, intensity.shape))
+    if max_opd is not None:
+        o = np.where(o <= max_opd, o, 0.0)
+    k4 = np.pi ** 2 / (4 * np.log(2))
+    decay = 1 - np.exp(-k4 * (fit.bandwidth / law ** 2 * o.max(axis=0)) ** 2)
     bw, fwhm_px, measured = _bandwidth_law(np.where(dead, np.nan, fit.bandwidth),
-                                           fit.bandwidth_err, law, max_rel_err=max_bw_rel_err)
+                                           fit.bandwidth_err, law, max_rel_err=max_bw_rel_err,
+                                           decay=decay, min_decay=min_envelope_decay)
     grid = common_grid(law)
     bw_grid = np.median(np.stack([np.interp(grid, law[k], bw[k]) for k in range(law.shape[0])]),
                         axis=0)

@@ -22,6 +22,7 @@ class WavecalParams:
     ft_law_deg: int = 2             # ... fringe-tracker outputs (few pixels)
     min_snr: float = 5.0            # pixels with a weaker fringe get no wavelength
     max_bw_rel_err: float = 0.02    # poorer per-trace bandwidths adopt the channel median
+    min_envelope_decay: float = 0.0   # ... as do traces whose scan sees less envelope drop
     window: float = 2.0             # fit |OPD| < window x nominal coherence length, science
     ft_window: float = 0.6          # ... fringe tracker (central fringe packet only)
     frames_per_chunk: int = 16      # frames read at a time (bounded memory)
@@ -31,6 +32,8 @@ class WavecalParams:
             raise ValueError("wavecal law degrees must be in 0..6 (ft 0..4)")
         if self.window <= 0 or self.ft_window <= 0:
             raise ValueError("wavecal windows must be positive (coherence lengths)")
+        if not 0 <= self.min_envelope_decay < 1:
+            raise ValueError("wavecal needs 0 <= min_envelope_decay < 1")
         if self.min_snr <= 0 or not 0 < self.max_bw_rel_err < 1 or self.frames_per_chunk < 1:
             raise ValueError("wavecal needs min_snr > 0, 0 < max_bw_rel_err < 1, "
                              "frames_per_chunk >= 1")
@@ -68,6 +71,8 @@ def run(inputs, params: WavecalParams) -> dict:
     if meta["problem"]:
         raise MissingCalibration(*meta["problem"])
     comb = inst.combiner
+    common = dict(min_snr=params.min_snr, max_bw_rel_err=params.max_bw_rel_err,
+                  min_envelope_decay=params.min_envelope_decay)
     if meta["channel"] == "ft":
         check_raw([raw], kind="lamp-scan")
         counts, opd, span = ft_scan_counts(raw, inputs.products["ft_dark"], instrument=inst)
@@ -76,8 +81,7 @@ def run(inputs, params: WavecalParams) -> dict:
         bw = ft.channel_fwhm_px * (ft.wave_max_m - ft.wave_min_m) / (ft.n_wave - 1)
         return wavecal_products(counts, opd[..., None], span[..., None], guess,
                                 max_opd=params.ft_window * guess ** 2 / bw,
-                                law_deg=params.ft_law_deg, axes=("output", "ft_wave"),
-                                min_snr=params.min_snr, max_bw_rel_err=params.max_bw_rel_err)
+                                law_deg=params.ft_law_deg, axes=("output", "ft_wave"), **common)
     setup = inst.setup(meta["setup"])
     check_raw([raw], kind="lamp-scan", setup=meta["setup"], polmode=meta["polmode"])
     flux, _ = scan_spectra(raw, inputs.products["dark"], inputs.products["flat"], instrument=inst,
@@ -87,8 +91,8 @@ def run(inputs, params: WavecalParams) -> dict:
     guess = np.broadcast_to(setup.nominal_wavelength_m(), flux.shape[1:])
     bw = setup.channel_fwhm_px * setup.dispersion_m_per_px
     return wavecal_products(flux, opd[:, base, None], span[:, base, None], guess,
-                            max_opd=params.window * guess ** 2 / bw, law_deg=params.law_deg, min_snr=params.min_snr,
-                            max_bw_rel_err=params.max_bw_rel_err)
+                            max_opd=params.window * guess ** 2 / bw, law_deg=params.law_deg,
+                            **common)
 
 
 STAGE = Stage(name="wavecal", version="1", params=WavecalParams, after=("dark", "flat"),
