@@ -190,7 +190,7 @@ def test_scan_fringe_period_is_the_truth_wavelength(tiny_night, instrument):
         frames = h["SCI_PIX"].data.astype(float)
         t = h["SCI_TIME"].data["T_START"] + h["SCI_TIME"].data["T_EXP"] / 2
         met_t, path = h["METROLOGY"].data["TIME"], h["METROLOGY"].data["PATH"]
-    sig = np.linspace(0.35e6, 0.6e6, 25001)
+    sig = np.linspace(0.35e6, 0.6e6, 2501)         # step 100 m^-1: 2e-4 of 1/lambda
     for k in (9, 14, 22):               # outputs of baselines (0,3), (1,2), (2,3)
         i, j = instrument.combiner.output_pair[k]
         opd = np.interp(t, met_t, path[:, j]) - np.interp(t, met_t, path[:, i])
