@@ -153,15 +153,14 @@ def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, backgroun
     }
 
 
-def _ft_block(counts, dark, rn, p2vm, *, gain, period, part):
+def _ft_block(counts, dark, rn, p2vm, *, gain, period):
+    """One chunk of FT frames -> (frame, 22, ft_wave) float32: F (4), Re C (6), Im C (6),
+    var (6)."""
     rate, var = counts_to_rate(counts, dark, gain_e_per_adu=gain, read_noise_adu=rn,
                                dit_s=period, poisson="mean")
     res = invert_combiner(rate[:, None], p2vm, variance=var[:, None], nan_policy="propagate")
-    if part == "flux":
-        return res.flux[:, 0].astype(np.float32)
-    if part == "coherent":
-        return res.coherent[:, 0].astype(np.complex64)
-    return res.coherent_var[:, 0].astype(np.float32)
+    return np.concatenate([res.flux[:, 0], res.coherent[:, 0].real, res.coherent[:, 0].imag,
+                           res.coherent_var[:, 0]], axis=1).astype(np.float32)
 
 
 def extract_ft(raw, *, ft_dark, ft_combiner, ft_wave, instrument,
@@ -189,17 +188,15 @@ def extract_ft(raw, *, ft_dark, ft_combiner, ft_wave, instrument,
     if dark.shape != counts.shape[1:]:
         raise BadInput(_where(ft_dark, "ft dark"), f"master {dark.shape} does not match FT "
                                                    f"counts {counts.shape[1:]} of {raw.path}")
-    out = {}
-    for part, name, axes, dtype, unit in (
-            ("flux", "ft_flux", ("ft_frame", "telescope", "ft_wave"), np.float32, "e-/s"),
-            ("coherent", "ft_coherent", ("ft_frame", "baseline", "ft_wave"), np.complex64, "e-/s"),
-            ("var", "ft_coherent_var", ("ft_frame", "baseline", "ft_wave"), np.float32,
-             "(e-/s)^2")):
-        n = 4 if part == "flux" else 6
-        arr = counts.map_blocks(_ft_block, dark, rn, p2vm, gain=det.gain_e_per_adu,
-                                period=period, part=part, dtype=dtype,
-                                chunks=(counts.chunks[0], (n,), (n_ftw,)))
-        out[name] = Array(arr, axes, unit)
+    # one task per chunk feeds the three datasets (the store computes them together)
+    parts = counts.map_blocks(_ft_block, dark, rn, p2vm, gain=det.gain_e_per_adu, period=period,
+                              dtype=np.float32, chunks=(counts.chunks[0], (22,), (n_ftw,)))
+    base = ("ft_frame", "baseline", "ft_wave")
+    out = {"ft_flux": Array(parts[:, :4], ("ft_frame", "telescope", "ft_wave"), "e-/s"),
+           "ft_coherent": Array((parts[:, 4:10] + 1j * parts[:, 10:16]).astype(np.complex64),
+                                base, "e-/s"),
+           "ft_coherent_var": Array(parts[:, 16:22], base, "(e-/s)^2",
+                                    "variance of each of Re C and Im C")}
     out["ft_wave"] = Array(ft_wave, ("ft_wave",), "m")
     return out
 
