@@ -26,6 +26,7 @@ from .numerics.wavelength import (common_grid, fit_dispersion_law, fit_fringe_sc
 from .stage import Array
 
 __all__ = ["check_raw", "flat_products", "scan_spectra", "frame_opd", "wavecal_products",
+           "wavecal_science", "wavecal_ft", "combiner_science", "combiner_ft",
            "combiner_products", "ft_scan_counts", "ft_mean_counts"]
 
 
@@ -238,9 +239,11 @@ def _bandwidth_law(bw, bw_err, law, *, max_rel_err=0.02, decay=None, min_decay=0
 
 def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trace", "x"),
                      min_snr=5.0, max_bw_rel_err=0.02, max_opd=None,
-                     min_envelope_decay=0.0) -> dict:
+                     min_envelope_decay=0.0, trim_grid=True) -> dict:
     """Wavelength products of a channel from scan intensities (frame, trace, x);
-    ``max_opd`` (m, broadcastable to (trace, x)) limits the fit to the central packet."""
+    ``max_opd`` (m, broadcastable to (trace, x)) limits the fit to the central packet.
+    ``trim_grid`` False keeps one grid point per pixel (a channel calibrated per pixel,
+    never resampled: the fringe tracker)."""
     ok = np.isfinite(intensity)
     dead = ~ok.all(axis=0)                                   # pixels never extracted
     fill = np.where(ok, intensity, np.nanmedian(np.where(ok, intensity, np.nan), axis=0))
@@ -256,7 +259,7 @@ def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trac
     bw, fwhm_px, measured = _bandwidth_law(np.where(dead, np.nan, fit.bandwidth),
                                            fit.bandwidth_err, law, max_rel_err=max_bw_rel_err,
                                            decay=decay, min_decay=min_envelope_decay)
-    grid = common_grid(law)
+    grid = common_grid(law, extrapolate_px=0.5 if trim_grid else np.inf)
     bw_grid = np.median(np.stack([np.interp(grid, law[k], bw[k]) for k in range(law.shape[0])]),
                         axis=0)
     res = np.where(used, wave - law, np.nan)
@@ -276,6 +279,36 @@ def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trac
             "bandwidth_is_measured": Array(measured, (axes[0],), "",
                                            "False: median of the other traces adopted"),
             "x_ref": x_ref, "x_scale": x_scale, "n_law_rejected": int((~used & ~dead).sum())}
+
+
+def wavecal_science(raw, dark, flat, *, instrument, setup_name, polmode, window=2.0,
+                    frames_per_chunk=16, **kw) -> dict:
+    """Wavelength products of a science channel from its delay scan; the fit is limited
+    to ``window`` nominal coherence lengths of zero OPD. ``kw`` go to
+    :func:`wavecal_products`."""
+    check_raw([raw], kind="lamp-scan", setup=setup_name, polmode=polmode)
+    setup, comb = instrument.setup(setup_name), instrument.combiner
+    flux, _ = scan_spectra(raw, dark, flat, instrument=instrument,
+                           frames_per_chunk=frames_per_chunk)
+    opd, span = frame_opd(raw.frame_times(), *raw.metrology(), comb.baselines)
+    base = comb.output_baseline[np.arange(flux.shape[1]) // setup.n_pol(polmode)]
+    guess = np.broadcast_to(setup.nominal_wavelength_m(), flux.shape[1:])
+    bw = setup.channel_fwhm_px * setup.dispersion_m_per_px
+    return wavecal_products(flux, opd[:, base, None], span[:, base, None], guess,
+                            max_opd=window * guess ** 2 / bw, **kw)
+
+
+def wavecal_ft(raw, ft_dark, *, instrument, window=0.6, **kw) -> dict:
+    """Wavelength products of the fringe tracker (axes output, ft_wave; one grid point
+    per pixel) from a delay scan's FT frames."""
+    check_raw([raw], kind="lamp-scan")
+    counts, opd, span = ft_scan_counts(raw, ft_dark, instrument=instrument)
+    ft = instrument.fringe_tracker
+    guess = np.broadcast_to(ft.nominal_wavelength_m(), counts.shape[1:])
+    bw = ft.channel_fwhm_px * (ft.wave_max_m - ft.wave_min_m) / (ft.n_wave - 1)
+    return wavecal_products(counts, opd[..., None], span[..., None], guess,
+                            max_opd=window * guess ** 2 / bw, axes=("output", "ft_wave"),
+                            trim_grid=False, **kw)
 
 
 # -- combiner -------------------------------------------------------------------------------
@@ -388,3 +421,38 @@ def require_beams(raws):
         raise MissingCalibration(where, f"no single-beam lamp exposure for beam(s) "
                                         f"{[m + 1 for m in missing]}")
     return [lit[i] for i in range(4)]
+
+
+def combiner_science(beam_raws, scan, *, dark_beam, dark_scan, flat, wavecal, instrument,
+                     setup_name, polmode, window=0.5, frames_per_chunk=16) -> dict:
+    """Combiner products of a science channel from its four single-beam exposures and
+    its delay scan (extracted with the flat, resampled to the wavecal grid)."""
+    beams = require_beams(beam_raws)
+    check_raw(beams, kind="lamp-beam", setup=setup_name, polmode=polmode)
+    check_raw([scan], kind="lamp-scan", setup=setup_name, polmode=polmode)
+    n_pol = instrument.setup(setup_name).n_pol(polmode)
+    kw = dict(instrument=instrument, frames_per_chunk=frames_per_chunk)
+    beam = np.stack([np.nanmean(scan_spectra(r, dark_beam, flat, **kw)[0], 0) for r in beams])
+    flux, var = scan_spectra(scan, dark_scan, flat, **kw)
+    opd, span = frame_opd(scan.frame_times(), *scan.metrology(), instrument.combiner.baselines)
+    base = instrument.combiner.output_baseline[np.arange(flux.shape[1]) // n_pol]
+    return combiner_products(beam, flux, var, opd[:, base, None], span[:, base, None],
+                             wave_pixel=wavecal["wave_pixel"],
+                             bandwidth_pixel=wavecal["bandwidth_pixel"],
+                             wave_grid=wavecal["wave_grid"], n_pol=n_pol, instrument=instrument,
+                             window_coherence=window)
+
+
+def combiner_ft(beam_raws, scan, *, ft_dark, wavecal, instrument, window=0.5) -> dict:
+    """Combiner products of the fringe tracker, per FT pixel (no resampling)."""
+    beams = require_beams(beam_raws)
+    check_raw(beams, kind="lamp-beam")
+    check_raw([scan], kind="lamp-scan")
+    counts, opd, span = ft_scan_counts(scan, ft_dark, instrument=instrument)
+    beam = np.stack([ft_mean_counts(r, ft_dark, instrument=instrument) for r in beams])
+    rn2 = instrument.detectors[instrument.fringe_tracker.detector].read_noise_e ** 2
+    return combiner_products(beam, counts, np.abs(counts) + rn2, opd[..., None],
+                             span[..., None], wave_pixel=wavecal["wave_pixel"],
+                             bandwidth_pixel=wavecal["bandwidth_pixel"],
+                             wave_grid=wavecal["wave_grid"], n_pol=1, instrument=instrument,
+                             resample=False, window_coherence=window)

@@ -7,12 +7,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import numpy as np
-
 from pipeline.errors import MissingCalibration
 from pipeline.inventory import Inventory, ft_dark_label, sci_channel
-from pipeline.lampcal import (check_raw, combiner_products, frame_opd, ft_mean_counts,
-                              ft_scan_counts, require_beams, scan_spectra)
+from pipeline.lampcal import combiner_ft, combiner_science
 from pipeline.stage import Stage, Unit
 from recipes.flat import needs_dark
 from recipes.wavecal import ft_scan_record
@@ -56,30 +53,17 @@ def plan(inventory: Inventory, params: CombinerParams, upstream) -> list[Unit]:
 
 
 def run(inputs, params: CombinerParams) -> dict:
-    meta, inst, p = inputs.unit.meta, inputs.instrument, inputs.products
+    meta, p = inputs.unit.meta, inputs.products
     if meta["problem"]:
         raise MissingCalibration(*meta["problem"])
-    *beam_raws, scan = inputs.raw
-    beams = require_beams(beam_raws)
-    check_raw([scan], kind="lamp-scan")
-    wc = p["wavecal"]
-    common = dict(wave_pixel=wc["wave_pixel"], bandwidth_pixel=wc["bandwidth_pixel"],
-                  wave_grid=wc["wave_grid"], instrument=inst, window_coherence=params.window)
+    *beams, scan = inputs.raw
     if meta["channel"] == "ft":
-        counts, opd, span = ft_scan_counts(scan, p["ft_dark"], instrument=inst)
-        beam = np.stack([ft_mean_counts(r, p["ft_dark"], instrument=inst) for r in beams])
-        return combiner_products(beam, counts, np.abs(counts) + 1.0, opd[..., None],
-                                 span[..., None], n_pol=1, resample=False, **common)
-    check_raw(beams + [scan], kind=None, setup=meta["setup"], polmode=meta["polmode"])
-    n_pol = inst.setup(meta["setup"]).n_pol(meta["polmode"])
-    kw = dict(instrument=inst, frames_per_chunk=params.frames_per_chunk)
-    beam = np.stack([np.nanmean(scan_spectra(r, p["dark_beam"], p["flat"], **kw)[0], 0)
-                     for r in beams])
-    flux, var = scan_spectra(scan, p["dark_scan"], p["flat"], **kw)
-    opd, span = frame_opd(scan.frame_times(), *scan.metrology(), inst.combiner.baselines)
-    base = inst.combiner.output_baseline[np.arange(flux.shape[1]) // n_pol]
-    return combiner_products(beam, flux, var, opd[:, base, None], span[:, base, None],
-                             n_pol=n_pol, **common)
+        return combiner_ft(beams, scan, ft_dark=p["ft_dark"], wavecal=p["wavecal"],
+                           instrument=inputs.instrument, window=params.window)
+    return combiner_science(beams, scan, dark_beam=p["dark_beam"], dark_scan=p["dark_scan"],
+                            flat=p["flat"], wavecal=p["wavecal"], instrument=inputs.instrument,
+                            setup_name=meta["setup"], polmode=meta["polmode"],
+                            window=params.window, frames_per_chunk=params.frames_per_chunk)
 
 
 STAGE = Stage(name="combiner", version="1", params=CombinerParams, after=("dark", "flat", "wavecal"),

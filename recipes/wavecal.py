@@ -7,11 +7,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import numpy as np
-
 from pipeline.errors import MissingCalibration
 from pipeline.inventory import Inventory, ft_dark_label, sci_channel
-from pipeline.lampcal import check_raw, frame_opd, ft_scan_counts, scan_spectra, wavecal_products
+from pipeline.lampcal import wavecal_ft, wavecal_science
 from pipeline.stage import Stage, Unit
 from recipes.flat import needs_dark
 
@@ -67,32 +65,17 @@ def plan(inventory: Inventory, params: WavecalParams, upstream) -> list[Unit]:
 
 
 def run(inputs, params: WavecalParams) -> dict:
-    meta, inst, raw = inputs.unit.meta, inputs.instrument, inputs.raw[0]
+    meta, p = inputs.unit.meta, inputs.products
     if meta["problem"]:
         raise MissingCalibration(*meta["problem"])
-    comb = inst.combiner
-    common = dict(min_snr=params.min_snr, max_bw_rel_err=params.max_bw_rel_err,
-                  min_envelope_decay=params.min_envelope_decay)
+    kw = dict(instrument=inputs.instrument, min_snr=params.min_snr,
+              max_bw_rel_err=params.max_bw_rel_err, min_envelope_decay=params.min_envelope_decay)
     if meta["channel"] == "ft":
-        check_raw([raw], kind="lamp-scan")
-        counts, opd, span = ft_scan_counts(raw, inputs.products["ft_dark"], instrument=inst)
-        ft = inst.fringe_tracker
-        guess = np.broadcast_to(ft.nominal_wavelength_m(), counts.shape[1:])
-        bw = ft.channel_fwhm_px * (ft.wave_max_m - ft.wave_min_m) / (ft.n_wave - 1)
-        return wavecal_products(counts, opd[..., None], span[..., None], guess,
-                                max_opd=params.ft_window * guess ** 2 / bw,
-                                law_deg=params.ft_law_deg, axes=("output", "ft_wave"), **common)
-    setup = inst.setup(meta["setup"])
-    check_raw([raw], kind="lamp-scan", setup=meta["setup"], polmode=meta["polmode"])
-    flux, _ = scan_spectra(raw, inputs.products["dark"], inputs.products["flat"], instrument=inst,
-                           frames_per_chunk=params.frames_per_chunk)
-    opd, span = frame_opd(raw.frame_times(), *raw.metrology(), comb.baselines)
-    base = comb.output_baseline[np.arange(flux.shape[1]) // setup.n_pol(meta["polmode"])]
-    guess = np.broadcast_to(setup.nominal_wavelength_m(), flux.shape[1:])
-    bw = setup.channel_fwhm_px * setup.dispersion_m_per_px
-    return wavecal_products(flux, opd[:, base, None], span[:, base, None], guess,
-                            max_opd=params.window * guess ** 2 / bw, law_deg=params.law_deg,
-                            **common)
+        return wavecal_ft(inputs.raw[0], p["ft_dark"], window=params.ft_window,
+                          law_deg=params.ft_law_deg, **kw)
+    return wavecal_science(inputs.raw[0], p["dark"], p["flat"], setup_name=meta["setup"],
+                           polmode=meta["polmode"], window=params.window, law_deg=params.law_deg,
+                           frames_per_chunk=params.frames_per_chunk, **kw)
 
 
 STAGE = Stage(name="wavecal", version="1", params=WavecalParams, after=("dark", "flat"),
