@@ -99,9 +99,10 @@ def _exposure_figure(view, outdir: Path, idx: int) -> str:
     cmap = view["chi2_map"]
     gx, gy = view["grid_dra"], view["grid_ddec"]
     best = np.nanmin(cmap)
-    shown = np.log10(cmap - best + 1)
+    shown = (cmap - best) / max(1.0, float(a.get("chi2_red", 1.0)))
     im = ax[1, 1].imshow(shown, origin="lower", cmap="magma_r", vmin=0,
-                         vmax=np.nanpercentile(shown, 90), extent=(gx[0], gx[-1], gy[0], gy[-1]))
+                         vmax=max(np.nanpercentile(shown, 25), 1.0),
+                         extent=(gx[0], gx[-1], gy[0], gy[-1]))
     ax[1, 1].set_xlim(gx[-1], gx[0])   # East to the left, as on the sky
     mins = view["minima"]
     ax[1, 1].plot(mins[:, 0], mins[:, 1], "c+", ms=8, label="grid minima")
@@ -110,8 +111,8 @@ def _exposure_figure(view, outdir: Path, idx: int) -> str:
         ax[1, 1].plot(a["runner_up_dra"], a["runner_up_ddec"], "bs", mfc="none", ms=9,
                       label=f"runner-up (dchi2 {a.get('runner_up_dchi2', np.nan):.3g})")
     ax[1, 1].set(xlabel="dRA cos Dec [mas] (East left)", ylabel="dDec [mas]",
-                 title="global search: log10(chi2 - chi2_min + 1)")
-    ax[1, 1].legend(fontsize=7, loc="lower left")
+                 title="global search: (chi2 - chi2_min) / max(1, chi2_red)")
+    ax[1, 1].legend(fontsize=7, loc="best", framealpha=0.5)
     fig.colorbar(im, ax=ax[1, 1])
     # Text summary.
     ax[1, 2].axis("off")
@@ -185,7 +186,8 @@ def _qc_figure(qc: dict, binaries, outdir: Path) -> str | None:
         if "condition" in v:
             panels.append((f"combiner condition number ({v.attrs.get('label', '')})",
                            np.asarray(v["condition"]), "pol"))
-    rej = [(str(v.attrs.get("label", "")), 1 - np.asarray(v["frame_valid"], bool).mean())
+    rej = [("_".join(str(v.attrs.get("label", "")).split("_")[-2:]),
+            1 - np.asarray(v["frame_valid"], bool).mean())
            for v in qc.get("reference", []) if "frame_valid" in v]
     if not rej:      # else the science exposures' own record (calibrate product attribute)
         rej = [(b.attrs.get("exposure", ""), b.attrs.get("frac_rejected", np.nan))
