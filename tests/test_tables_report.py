@@ -199,10 +199,9 @@ def test_tiny_night_astrometry_end_to_end(tiny_reduced):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(reason="calibrated tiny-night closure phases at the true position imply "
-                          "a flux ratio ~0.19-0.23 against the true 0.251 (upstream of the "
-                          "fit; the fit recovers the ratio from analytic data)", strict=False)
 def test_tiny_night_flux_ratio_end_to_end(tiny_reduced):
+    # Flux ratio within 3 sigma of the truth; its error includes the fibre-pointing term
+    # (the calibrators' own pointing offsets enter through the phase zero-point).
     _, _, fits = tiny_reduced
     for a, t in fits:
         assert abs(a["flux_ratio"] - t["flux_ratio"]) < 3 * a["flux_ratio_err"]
