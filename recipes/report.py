@@ -25,11 +25,13 @@ class ReportParams:
 
 
 def plan(inventory: Inventory, params: ReportParams, upstream) -> list[Unit]:
-    needs = {f"binary:{k}": ("binary", u.label) for k, u in enumerate(upstream.get("binary", []))}
-    if params.qc:
-        for stage in QC_STAGES:
+    fitted = [u.label for u in upstream.get("binary", [])]
+    needs = {f"binary:{k}": ("binary", lab) for k, lab in enumerate(fitted)}
+    if params.qc:     # reference products of the fitted exposures only: a bad calibrator
+        for stage in QC_STAGES:     # file must not take the night's report down with it
             needs.update({f"{stage}:{k}": (stage, u.label)
-                          for k, u in enumerate(upstream.get(stage, []))})
+                          for k, u in enumerate(upstream.get(stage, []))
+                          if stage != "reference" or u.label in fitted})
     return [Unit(label="night", needs=needs)]
 
 
