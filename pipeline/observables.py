@@ -30,9 +30,10 @@ import numpy as np
 from .errors import BadInput, MissingCalibration
 from .geometry import hour_angle_rad, uvw_from_enu
 from .numerics.averaging import TRIANGLES, average_exposure
-from .numerics.transfer import (calibrate_phase, interpolate_in_time, interpolate_phase_in_time,
-                                interpolation_weights, transfer_function, uniform_disk_vis2,
-                                wrap_phase)
+from .numerics.transfer import (calibrate_phase, fit_phase_zero_point, interpolate_in_time,
+                                interpolate_phase_in_time, interpolation_weights,
+                                transfer_function, uniform_disk_vis2, wrap_phase)
+from .skymodel import MAS
 from .oifits import OiArray, OiObservation
 from .stage import Array
 
@@ -153,8 +154,13 @@ def _cal_expectation(view):
 
 
 def calibrate_product(science, calibrators, *, science_path: str = "", method: str = "linear",
-                      scatter_floor: float = 0.0) -> dict:
+                      scatter_floor: float = 0.0, phase_zero_point: str = "fit") -> dict:
     """Calibrate one science ``average`` product with the calibrators' ones.
+
+    ``phase_zero_point="fit"`` solves the referenced-phase zero-point jointly with
+    each calibrator star's own pointing offset (``transfer.fit_phase_zero_point``,
+    constant zero-point over the night) when the calibrators' (u, v) coverage
+    allows, else falls back to the interpolation of the calibrators' phases.
 
     Raises
     ------
@@ -195,6 +201,19 @@ def calibrate_product(science, calibrators, *, science_path: str = "", method: s
     ZT, ZTe = (x[0] for x in interpolate_phase_in_time(
         t_cal, np.array(zp_t3), np.array([c["t3phi_err"] for c in cals]), t, **kw))
     lo, hi, a = (x[0] for x in interpolation_weights(t_cal, t, **kw))
+    zp_cov = (1 - a) ** 2 * cals[lo]["visphi_cov"] + a ** 2 * cals[hi]["visphi_cov"]
+    offsets_mas, fitted = {}, False
+    if phase_zero_point == "fit" and len(cals) >= 2:
+        names = sorted({str(c.attrs.get("object", "")) for c in cals})
+        star = np.array([names.index(str(c.attrs.get("object", ""))) for c in cals])
+        uv = np.array([c["uvw"] for c in cals])
+        zp, zpe, off, _, fitted = fit_phase_zero_point(
+            np.array(zp_vis), np.array([c["visphi_err"] for c in cals]), uv[..., 0],
+            uv[..., 1], wave, star)
+        if fitted:
+            ZV, ZVe = zp, zpe
+            zp_cov = _outer(zpe) * np.eye(wave.size)
+            offsets_mas = {n: (off[:, s] / MAS).tolist() for s, n in enumerate(names)}
 
     v2, v2e = transfer_function(science["vis2"], science["vis2_err"], T2, T2e)
     va, vae = transfer_function(science["visamp"], science["visamp_err"], TA, TAe)
@@ -208,8 +227,7 @@ def calibrate_product(science, calibrators, *, science_path: str = "", method: s
     tf_cov = (1 - a) ** 2 * tf_covs[lo] + a ** 2 * tf_covs[hi]
     tf_cov = tf_cov + _outer(scatter_floor * (tf2[hi] - tf2[lo]))     # systematic term
     v2cov = _outer_div(science["vis2_cov"], T2) + _outer(v2) * _outer_div(tf_cov, T2)
-    pcov = (science["visphi_cov"] + (1 - a) ** 2 * cals[lo]["visphi_cov"]
-            + a ** 2 * cals[hi]["visphi_cov"])
+    pcov = science["visphi_cov"] + zp_cov
     tcov = (science["t3phi_cov"] + (1 - a) ** 2 * cals[lo]["t3phi_cov"]
             + a ** 2 * cals[hi]["t3phi_cov"])
     out = {k: science[k] for k in ("flux", "flux_err", "uvw", "wave", "band", "n_valid")}
@@ -230,7 +248,9 @@ def calibrate_product(science, calibrators, *, science_path: str = "", method: s
         visphi_zero_point=Array(ZV, _PB, "rad"), t3phi_zero_point=Array(ZT, _PT, "rad"),
         calibrators=json.dumps([str(c.attrs.get("label", getattr(c, "path", "?")))
                                 for c in cals]),
-        calibrator_mjd=json.dumps(t_cal.tolist()), interpolation=method)
+        calibrator_mjd=json.dumps(t_cal.tolist()), interpolation=method,
+        phase_zero_point="fit" if fitted else "interpolate",
+        calibrator_offsets_mas=json.dumps(offsets_mas))
     for k, v in sa.items():
         if k in ("object", "kind", "setup", "polmode", "ra_deg", "dec_deg", "mjd", "mjd_start",
                  "date_obs", "int_time_s", "stations", "n_frame", "frac_rejected"):

@@ -37,7 +37,7 @@ from pipeline.skymodel import MAS, uniform_disk_visibility
 
 __all__ = ["uniform_disk_vis2", "transfer_function", "interpolate_in_time",
            "interpolation_weights", "interpolate_phase_in_time", "calibrate_vis2",
-           "calibrate_phase", "wrap_phase"]
+           "calibrate_phase", "wrap_phase", "fit_phase_zero_point"]
 
 
 def wrap_phase(phi):
@@ -163,3 +163,76 @@ def calibrate_vis2(vis2, vis2_err, tf, tf_err):
 def calibrate_phase(phase, phase_err, zero_point, zero_point_err):
     """Calibrated phase = wrap(raw - zero point); errors in quadrature (radians)."""
     return wrap_phase(np.asarray(phase) - zero_point), np.hypot(phase_err, zero_point_err)
+
+
+def fit_phase_zero_point(phase, phase_err, u_m, v_m, wave_m, star, *, max_condition=1e10):
+    """Instrumental referenced-phase zero-point and the calibrators' own offsets.
+
+    Model of calibrator exposure k of star s(k) (phases already minus the star's
+    uniform-disk phase, 0 or pi):
+
+        psi_k(b, lambda) = phi(b, lambda) - 2 pi (u_kb x_s + v_kb y_s) / lambda
+
+    with phi constant over the night (instrument plus metrology constants) and
+    (x_s, y_s) the star's offset from its commanded pointing (the sign convention
+    of ``pipeline.skymodel``). Weighted linear least squares: phi is profiled out
+    per baseline and wavelength (weighted means over exposures), the offsets are
+    solved from the normal equations. They are identifiable only through the
+    change of (u, v) between exposures; when the normal matrix is singular (one
+    exposure, or no (u, v) change) the offsets are set to 0 and ``fitted`` is False.
+
+    Parameters
+    ----------
+    phase, phase_err : ndarray, shape (n_cal, n_pol, n_base, n_wave), radians
+    u_m, v_m : ndarray, shape (n_cal, n_base), metres
+    wave_m : ndarray, shape (n_wave,), metres
+    star : ndarray of int, shape (n_cal,), star index 0..n_star-1 of each exposure
+
+    Returns
+    -------
+    zero_point, zero_point_err : ndarray, shape (n_pol, n_base, n_wave), radians
+    offsets : ndarray, shape (n_pol, n_star, 2), radians (x East, y North)
+    offsets_cov : ndarray, shape (n_pol, 2 n_star, 2 n_star), radians^2
+    fitted : bool
+    """
+    psi = np.asarray(phase, float)
+    err = np.asarray(phase_err, float)
+    star = np.asarray(star, int)
+    n_cal, n_pol, n_base, n_wave = psi.shape
+    n_star = int(star.max()) + 1
+    with np.errstate(invalid="ignore", divide="ignore"):
+        w = np.where(np.isfinite(psi) & np.isfinite(err) & (err > 0), 1 / err ** 2, 0.0)
+    psi = np.where(w > 0, psi, 0.0)
+    k2 = 2 * np.pi / np.asarray(wave_m, float)
+    g = np.zeros((n_cal, n_base, n_wave, 2 * n_star))
+    rows = np.arange(n_cal)
+    g[rows, :, :, 2 * star] = -np.asarray(u_m, float)[:, :, None] * k2
+    g[rows, :, :, 2 * star + 1] = -np.asarray(v_m, float)[:, :, None] * k2
+    sw = w.sum(axis=0)                                              # (pol, base, wave)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ref = np.angle((w * np.exp(1j * psi)).sum(axis=0))
+        r = wrap_phase(psi - ref)
+        rbar = (w * r).sum(axis=0) / sw
+        gbar = np.einsum("kpbw,kbwj->pbwj", w, g) / sw[..., None]
+    zp = np.empty((n_pol, n_base, n_wave))
+    zp_err = np.empty_like(zp)
+    offsets = np.zeros((n_pol, n_star, 2))
+    cov = np.zeros((n_pol, 2 * n_star, 2 * n_star))
+    fitted = n_cal >= 2
+    for p in range(n_pol):                    # 1 or 2 polarisations: small loop
+        a = g - np.nan_to_num(gbar[p])[None]                        # (cal, base, wave, j)
+        y = r[:, p] - np.nan_to_num(rbar[p])[None]
+        wp = w[:, p]
+        normal = np.einsum("kbw,kbwi,kbwj->ij", wp, a, a)
+        theta = np.zeros(2 * n_star)
+        if fitted and np.linalg.cond(normal) < max_condition:
+            cov[p] = np.linalg.inv(normal)
+            theta = cov[p] @ np.einsum("kbw,kbwi,kbw->i", wp, a, np.where(wp > 0, y, 0.0))
+        else:
+            fitted = False
+        offsets[p] = theta.reshape(n_star, 2)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            zp[p] = wrap_phase(ref[p] + rbar[p] - gbar[p] @ theta)
+            zp_err[p] = np.sqrt(1 / sw[p] + np.einsum("bwi,ij,bwj->bw", np.nan_to_num(gbar[p]),
+                                                      cov[p], np.nan_to_num(gbar[p])))
+    return zp, zp_err, offsets, cov, fitted

@@ -85,3 +85,41 @@ def test_phase_zero_point_interpolation_across_pi():
     ph, err = calibrate_phase(np.array([-3.0]), 0.1, 3.0, 0.1)
     np.testing.assert_allclose(ph, [2 * np.pi - 6.0])
     np.testing.assert_allclose(err, np.hypot(0.1, 0.1))
+
+
+def test_phase_zero_point_fit_recovers_calibrator_offsets(rng):
+    """Two calibrator stars, three exposures each over a few hours: the constant
+    instrumental phase and each star's pointing offset come back within their errors
+    (forward model written here: phase of a point source at (x, y) is
+    -2 pi (u x + v y) / lambda, the convention of pipeline.skymodel)."""
+    from pipeline.geometry import uvw_from_enu
+    from pipeline.numerics.transfer import fit_phase_zero_point
+    enu = np.array([[0, 0, 0], [46.2, 21.0, 0.3], [20.0, -60.0, -0.2], [-58.0, 40.0, 0.5]])
+    pairs = ((0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3))
+    b_enu = np.array([enu[j] - enu[i] for i, j in pairs])
+    lat = np.deg2rad(-37.41)
+    wave = np.linspace(2.0e-6, 2.4e-6, 8)
+    phi = rng.uniform(-np.pi, np.pi, (1, 6, 8))
+    offsets = np.array([[0.5, 0.3], [-0.4, 0.7]]) * MAS
+    star = np.array([0, 1, 0, 1, 0, 1])
+    ha = np.array([-1.5, -1.0, -0.3, 0.2, 0.8, 1.4])            # rad
+    dec = np.deg2rad(np.where(star == 0, -30.5, -20.0))
+    uvw = np.array([uvw_from_enu(b_enu, h, d, lat)[0] for h, d in zip(ha, dec)])
+    u, v = uvw[..., 0], uvw[..., 1]
+    model = phi[None] - 2 * np.pi * (u[:, None, :, None] * offsets[star, 0][:, None, None, None]
+                                     + v[:, None, :, None] * offsets[star, 1][:, None, None, None]
+                                     ) / wave
+    err = np.full(model.shape, 0.02)
+    psi = np.angle(np.exp(1j * (model + rng.normal(0, 0.02, model.shape))))
+    zp, zp_err, off, cov, fitted = fit_phase_zero_point(psi, err, u, v, wave, star)
+    assert fitted
+    d = (off[0].ravel() - offsets.ravel()) / np.sqrt(np.diag(cov[0]))
+    assert np.all(np.abs(d) < 4)                      # 4 Gaussian parameters, 4 sigma
+    assert np.sqrt(np.diag(cov[0])).max() < 0.05 * MAS
+    pull = np.angle(np.exp(1j * (zp - phi))) / zp_err
+    assert np.all(np.abs(pull) < 4.5)                 # 48 values
+    # a single exposure cannot separate offset and zero point: offsets 0, zp = its phase
+    zp1, _, off1, _, fitted1 = fit_phase_zero_point(psi[:1], err[:1], u[:1], v[:1], wave,
+                                                    star[:1])
+    assert not fitted1 and np.all(off1 == 0)
+    np.testing.assert_allclose(zp1, psi[0], atol=1e-12)
