@@ -12,9 +12,11 @@ calibrators of the same set-up and polarisation mode):
 * V2 (and visibility amplitude, T3 amplitude) divided by the transfer
   function, interpolated linearly in time between the calibrators bracketing
   the science exposure (nearest calibrator outside their span);
-* closure phases and referenced phases minus the calibrators' zero-points
-  (measured minus the uniform-disk model's phase, 0 or pi), interpolated the
-  same way on the circle;
+* closure phases minus the calibrators' zero-points (measured minus the
+  uniform-disk model's phase, 0 or pi), interpolated the same way on the circle;
+  referenced phases minus a zero-point fitted as constant over the night jointly
+  with each calibrator star's pointing offset, or interpolated like the closure
+  phases when the calibrators' (u, v) coverage cannot separate the two;
 * covariances between wavelengths: the science covariance scaled by the
   transfer function (V2) or added to the interpolated calibrator covariance
   (phases).
