@@ -176,13 +176,16 @@ def _primary(obs, array, *, origin, observer, instrume, procsoft):
 
 def write_oifits(path, observations: Sequence[OiObservation], array: OiArray, *,
                  origin: str = "twinfield", observer: str = "UNKNOWN",
-                 instrume: str = "FOURFOLD", procsoft: str = "twinfield") -> Path:
+                 instrume: str = "FOURFOLD", procsoft: str | None = None) -> Path:
     """Write an OIFITS v2 file holding ``observations`` (written atomically).
 
     Returns
     -------
     pathlib.Path of the written file.
     """
+    if procsoft is None:
+        from pipeline import __version__
+        procsoft = f"twinfield {__version__}"
     obs = list(observations)
     if not obs:
         raise ValueError("write_oifits needs at least one observation")

@@ -89,6 +89,7 @@ def test_mandatory_keywords_and_units(written):
                     "OBJECT", "INSMODE"):
             assert key in p and str(p[key]).strip(), key
         assert p["OBJECT"] == obs.target
+        assert p["PROCSOFT"].startswith("twinfield ")     # "versioned" software (Table 2)
         assert p["DATE-OBS"].startswith("2026-12-01T03:04")
         names = [h.name for h in hdul[1:]]
         assert names == ["OI_TARGET", "OI_ARRAY", "OI_WAVELENGTH", "OI_VIS2", "OI_VIS",
