@@ -45,6 +45,12 @@ def observables_from_product(view, *, use_phases: bool = True, n_draw: int = 0,
         uvw = np.asarray(view["uvw"], float)
     except KeyError as exc:
         raise BadInput(path, f"calibrated product lacks {exc}") from None
+    n_ok = [int((np.isfinite(x) & np.isfinite(e) & (e > 0)).sum())
+            for x, e in ((vis2, vis2_err), (t3, t3e))]
+    if sum(n_ok) < 4:
+        raise BadInput(path, f"only {n_ok[0]} usable V2 and {n_ok[1]} closure-phase points "
+                             f"(of {vis2.size} and {t3.size}): values or errors are NaN or "
+                             "errors <= 0 (too few valid frames for a bootstrap upstream?)")
     band = next((np.asarray(view[k], float) for k in ("band", "bandwidth") if k in view), None)
     if band is None or band.shape != wave.shape:
         band = np.abs(np.gradient(wave))

@@ -106,6 +106,18 @@ def test_bad_calibrated_product_names_the_file(tmp_path, instrument, rng):
                           instrument=instrument, workdir=tmp_path), binary.BinaryParams())
 
 
+def test_product_without_errors_names_the_problem(tmp_path, instrument, rng):
+    from pipeline.errors import BadInput
+    d = _calibrated(instrument, rng, 0.0, 61010.0)
+    for k in ("vis2_err", "t3phi_err"):
+        d[k] = Array(d[k].data * np.nan, d[k].axes)
+    path = write_product(tmp_path / "noerr.k.h5", d, {"key": "k"})
+    unit = Unit(label="noerr", raw=("/night/noerr.fits",))
+    with pytest.raises(BadInput, match=r"noerr\.k\.h5: only 0 usable V2 and 0 closure"):
+        binary.run(Inputs(unit=unit, raw=[], products={"calibrated": ProductView(path)},
+                          instrument=instrument, workdir=tmp_path), binary.BinaryParams())
+
+
 def test_tables_written_and_read_back(night, instrument):
     work, views, _ = night
     unit = Unit(label="night", needs={f"exp{k}": ("binary", "x") for k in range(3)})
