@@ -280,8 +280,9 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
     n_boot : int, bootstrap realisations (0: none)
     search_max_channels : int, channels (evenly spread) used by the grid search
     ambiguous_dchi2, chi2_red_range : flag thresholds (see module docstring)
-    bootstrap : "auto" (frames if given, else channels), "channels" or "none"
-    seed : int, seed of the channel bootstrap
+    bootstrap : "auto" (the supplied realisations, if any, and a channel resampling),
+        "channels" (channel resampling only) or "none"
+    seed : int, seed of the channel resampling
 
     Returns
     -------
