@@ -1,17 +1,488 @@
 # SPDX-License-Identifier: BSD-3-Clause
-"""`make bench`: speed and memory benchmarks (not built yet).
+"""`make bench`: throughput against the I/O floor, peak memory, scaling, reruns, kernels.
 
-Planned measurements (written to build/bench.json): wall time of a full reduce over
-the time to read and write its bytes, peak memory on two night sizes, scaling with
-dask.distributed workers, incremental rerun time, and kernel throughputs.
+``python -m pipeline.bench`` simulates the benchmark night once into a cache
+(``build/bench-night``, reused while its stamp matches), then measures, each
+against its reference taken in the same run, and writes ``build/bench.json``:
+
+1. ``io_floor_ratio``: wall time of a full ``reduce`` (threads, all cores) over the
+   time to read every raw byte of the night's inventory (astropy, every HDU's data
+   materialised) and write as many bytes as the reduction wrote (numpy ``tofile``);
+2. ``peak_rss_gib`` of that reduce (the child process tree, polled from /proc, and
+   the child's own ``ru_maxrss``) and ``memory_ratio``: the same on a night whose
+   on-sky exposures are ``TWINFIELD_BENCH_SCALE`` (4) times longer, over it;
+3. ``scaling_2v1``: reduce time on a dask.distributed LocalCluster of 1 worker over
+   that on 2 workers (one thread each);
+4. ``rerun_ratio``: ``rerun(work, "binary")`` after a binary parameter changed, over
+   the full reduce;
+5. kernels, single-threaded BLAS in a child process: ``ft_frames_per_s_core``,
+   ``sc_pixels_per_s_core``, ``binary_search_s`` (global grid search of one exposure).
+
+Environment: ``TWINFIELD_BENCH_SCENARIO`` (``bench``; ``demo`` for a quicker pass),
+``TWINFIELD_BENCH_SEED`` (1), ``TWINFIELD_BENCH_SCALE`` (4),
+``TWINFIELD_BENCH_PARTS`` (comma list of ``kernels,reduce,rerun,scaling,memory``),
+``TWINFIELD_BENCH_OUT`` (``build``). Results are written after every part, so an
+interrupted run keeps what it measured. Timings never enter the tests.
 """
 
+from __future__ import annotations
+
+import json
+import os
+import re
+import shutil
+import subprocess
 import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["scaled_scenario_text", "night_bytes", "io_floor", "tree_rss_bytes",
+           "run_child", "kernel_benchmarks", "ensure_night", "main", "PARTS"]
+
+PARTS = ("kernels", "reduce", "rerun", "scaling", "memory")
+GIB = 2.0 ** 30
+TARGETS = {"io_floor_ratio": ("<=", 3.0), "peak_rss_gib": ("<", 2.0),
+           "memory_ratio": ("<=", 1.25), "scaling_2v1": (">=", 1.6),
+           "rerun_ratio": ("<=", 0.1), "ft_frames_per_s_core": (">=", 2.0e5),
+           "binary_search_s": ("<=", 2.0)}
 
 
-def main() -> int:
-    print("twinfield bench: the benchmark suite is not built yet; nothing was measured.")
+# -- the nights ------------------------------------------------------------------------
+
+def scaled_scenario_text(text: str, factor: int) -> str:
+    """A scenario's TOML with every on-sky exposure's ``nframe`` times ``factor``
+    (afternoon calibrations unchanged): each exposure, and its fringe-tracker series,
+    ``factor`` times longer, the number of products the same."""
+    if factor < 1:
+        raise ValueError(f"scale factor must be >= 1, found {factor}")
+    out, in_seq = [], False
+    for line in text.splitlines(keepends=True):
+        stripped = line.strip()
+        if stripped.startswith("["):
+            in_seq = stripped == "[[sequence]]"
+        m = re.match(r"(\s*nframe\s*=\s*)(\d+)(.*)", line, re.S)
+        if in_seq and m:
+            line = f"{m.group(1)}{int(m.group(2)) * factor}{m.group(3)}"
+        out.append(line)
+    return "".join(out)
+
+
+def night_bytes(night_dir) -> int:
+    """Bytes of the night's raw FITS files."""
+    return sum(p.stat().st_size for p in Path(night_dir).glob("*.fits"))
+
+
+def ensure_night(night_dir, scenario, *, seed: int, log=print) -> Path:
+    """Simulate ``scenario`` (name or TOML path) into ``night_dir`` unless a complete night
+    of the same scenario text and seed is there (stamp ``bench-stamp.json``)."""
+    from .simulate import simulate_night
+    from .simulate.scenario import _resolve
+    night = Path(night_dir)
+    source = _resolve(scenario)
+    stamp = {"scenario": str(scenario), "text": source.read_text(), "seed": seed}
+    stamp_path = night / "bench-stamp.json"
+    if (night / "truth.json").is_file() and stamp_path.is_file():
+        try:
+            if json.loads(stamp_path.read_text()) == stamp:
+                return night
+        except ValueError:
+            pass
+    if night.exists():
+        shutil.rmtree(night)
+    log(f"simulating scenario {scenario} (seed {seed}) into {night} ...")
+    t0 = time.perf_counter()
+    simulate_night(night, scenario=source, seed=seed)
+    stamp_path.write_text(json.dumps(stamp))
+    log(f"  {night_bytes(night) / 1e9:.2f} GB in {time.perf_counter() - t0:.0f} s")
+    return night
+
+
+# -- reduce in a child process, its memory polled from /proc ---------------------------
+
+def _children(pid: int) -> list[int]:
+    try:
+        out = []
+        for task in Path(f"/proc/{pid}/task").iterdir():
+            text = (task / "children").read_text().split()
+            out += [int(c) for c in text]
+        return out
+    except OSError:
+        return []
+
+
+def tree_rss_bytes(pid: int) -> int:
+    """Resident memory of process ``pid`` and all its descendants, bytes (Linux /proc)."""
+    total, todo, seen = 0, [pid], set()
+    page = os.sysconf("SC_PAGE_SIZE")
+    while todo:
+        p = todo.pop()
+        if p in seen:
+            continue
+        seen.add(p)
+        try:
+            total += int(Path(f"/proc/{p}/statm").read_text().split()[1]) * page
+        except (OSError, IndexError, ValueError):
+            continue
+        todo += _children(p)
+    return total
+
+
+def run_child(request: dict, *, poll_s: float = 0.1, env=None) -> dict:
+    """Run ``_child(request)`` in a fresh interpreter; returns its JSON answer plus
+    ``wall_s`` (process wall time) and ``tree_peak_rss_bytes`` (polled)."""
+    with tempfile.NamedTemporaryFile("w", suffix=".json", delete=False) as fh:
+        json.dump(request, fh)
+        req_path = fh.name
+    out_path = req_path + ".out"
+    cmd = [sys.executable, "-m", "pipeline.bench", "--child", req_path, out_path]
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(cmd, env=env, cwd=Path(__file__).resolve().parent.parent)
+    peak = 0
+    while proc.poll() is None:
+        peak = max(peak, tree_rss_bytes(proc.pid))
+        time.sleep(poll_s)
+    wall = time.perf_counter() - t0
+    try:
+        answer = json.loads(Path(out_path).read_text())
+    except (OSError, ValueError):
+        answer = {"error": f"child exited with {proc.returncode} and no answer"}
+    finally:
+        Path(req_path).unlink(missing_ok=True)
+        Path(out_path).unlink(missing_ok=True)
+    answer.update(wall_s=wall, tree_peak_rss_bytes=peak, returncode=proc.returncode)
+    return answer
+
+
+def _child(request: dict) -> dict:
+    """In the child: one reduce / rerun / kernel run, timed around the call."""
+    import resource
+    if request["what"] == "kernels":
+        return kernel_benchmarks(**request.get("kw", {}))
+    from .engine import reduce, rerun
+    kw = dict(scheduler=request.get("scheduler", "threads"), workers=request.get("workers"),
+              progress=False)
+    t0 = time.perf_counter()
+    if request["what"] == "rerun":
+        summary = rerun(request["work"], request["stage"], **kw)
+    else:
+        summary = reduce(request["night"], request["work"], config=request.get("config"), **kw)
+    seconds = time.perf_counter() - t0
+    ru = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024          # KiB on Linux
+    return {"seconds": seconds, "self_max_rss_bytes": ru, "computed": len(summary.computed),
+            "reused": len(summary.reused), "failed": [list(f) for f in summary.failed][:20],
+            "n_failed": len(summary.failed)}
+
+
+# -- the I/O floor -------------------------------------------------------------------
+
+def io_floor(night_dir, work_dir, *, scratch) -> dict:
+    """Seconds to read every raw file of the night's inventory (astropy, data of every
+    HDU materialised as numpy arrays) and to write as many bytes as ``work_dir`` holds
+    (numpy ``tofile``, one file per product, no fsync: the reduction does not either)."""
+    from astropy.io import fits
+    from .inventory import Inventory
+    inv = Inventory.scan(night_dir)
+    paths = [r.path for r in inv.records]
+    t0 = time.perf_counter()
+    n_read = 0
+    for p in paths:
+        with fits.open(p, memmap=False) as hdul:
+            for hdu in hdul:
+                data = hdu.data
+                if data is not None:
+                    n_read += np.asarray(data).nbytes if not hasattr(data, "columns") else \
+                        sum(np.asarray(data[c.name]).nbytes for c in data.columns)
+    t_read = time.perf_counter() - t0
+    sizes = [p.stat().st_size for p in Path(work_dir).rglob("*") if p.is_file()]
+    scratch = Path(scratch)
+    scratch.mkdir(parents=True, exist_ok=True)
+    t0 = time.perf_counter()
+    for n, size in enumerate(sizes):
+        np.zeros(size, np.uint8).tofile(scratch / f"product{n}.bin")
+    t_write = time.perf_counter() - t0
+    shutil.rmtree(scratch, ignore_errors=True)
+    return {"read_s": t_read, "write_s": t_write, "io_s": t_read + t_write,
+            "raw_files": len(paths), "raw_bytes": sum(Path(p).stat().st_size for p in paths),
+            "raw_data_bytes": n_read, "product_files": len(sizes), "product_bytes": sum(sizes)}
+
+
+# -- kernels ---------------------------------------------------------------------------
+
+def _nominal_p2vm(instrument, n_wave: int, n_pol: int = 1) -> np.ndarray:
+    """P2VM (pol, wave, 16, output) of the nominal combiner (instrument model)."""
+    from .numerics.combiner_model import build_v2pm, weighted_pinv
+    comb = instrument.combiner
+    pairs = comb.output_pair
+    n_out = pairs.shape[0]
+    t = np.zeros((n_pol, n_out, 4, n_wave))
+    o = np.arange(n_out)
+    t[:, o, pairs[:, 0]] = comb.nominal_transmission
+    t[:, o, pairs[:, 1]] = comb.nominal_transmission
+    t /= t.sum(axis=1, keepdims=True)
+    contrast = np.full((n_pol, n_out, n_wave), comb.nominal_contrast)
+    phase = np.broadcast_to(comb.output_nominal_phase_rad[None, :, None], contrast.shape)
+    return weighted_pinv(build_v2pm(t, contrast, phase, pairs))
+
+
+def _best_rate(fn, n_items: float, *, min_s: float, max_repeat: int = 50) -> float:
+    """Items per second of ``fn()``: best of repeats until ``min_s`` has passed."""
+    best, spent, n = np.inf, 0.0, 0
+    while (spent < min_s or n < 2) and n < max_repeat:
+        t0 = time.perf_counter()
+        fn()
+        dt = time.perf_counter() - t0
+        best, spent, n = min(best, dt), spent + dt, n + 1
+    return n_items / best
+
+
+def kernel_benchmarks(*, ft_frames: int = 4096, sc_frames: int = 8, setup: str = "medium",
+                      min_s: float = 2.0, seed: int = 1, binary_repeat: int = 3,
+                      binary_radius_mas: float | None = None) -> dict:
+    """Throughput of the extraction kernels and time of the binary grid search, on
+    arrays of the instrument model's sizes, in this process (run it single-threaded).
+
+    FT: ``counts_to_rate`` + ``invert_combiner`` on one chunk of ``ft_frames``
+    (24 outputs x the FT pixels), uint16 counts. Science: ``optimal_extract`` +
+    ``resample_to_grid`` + ``invert_combiner`` on ``sc_frames`` frames of the set-up's
+    window (24 traces). Binary: ``grid_chi2`` over the fibre's field (radius = fibre
+    FWHM, step lambda_min / 4 B_max, 16 flux ratios, 32 channels), the search of
+    ``fit_binary`` with the stage's defaults (``binary_radius_mas`` shrinks it for tests).
+    """
+    from .geometry import uvw_from_enu
+    from .instrument import load_instrument
+    from .numerics.binary_fit import search_grid
+    from .numerics.binary_model import grid_chi2
+    from .numerics.coherent_flux import counts_to_rate, invert_combiner, traces_to_outputs
+    from .numerics.extraction import optimal_extract, resample_to_grid
+    from .numerics.traces import trace_profiles
+    inst = load_instrument()
+    rng = np.random.default_rng(seed)
+    out = {}
+    # fringe tracker
+    ft = inst.fringe_tracker
+    ft_det = inst.detectors[ft.detector]
+    p2vm_ft = _nominal_p2vm(inst, ft.n_wave)
+    counts = rng.poisson(ft_det.bias_adu + 200.0, (ft_frames, 24, ft.n_wave)).astype(np.uint16)
+    dark = np.full((24, ft.n_wave), ft_det.bias_adu)
+    rn = np.full((24, ft.n_wave), ft_det.read_noise_e / ft_det.gain_e_per_adu)
+
+    def ft_chunk():
+        rate, var = counts_to_rate(counts, dark, gain_e_per_adu=ft_det.gain_e_per_adu,
+                                   read_noise_adu=rn, dit_s=ft.frame_period_s, poisson="mean")
+        return invert_combiner(rate[:, None], p2vm_ft, variance=var[:, None],
+                               nan_policy="propagate")
+    out["ft_frames_per_s_core"] = _best_rate(ft_chunk, ft_frames, min_s=min_s)
+    # science channel
+    su = inst.setup(setup)
+    det = inst.detectors["science"]
+    n_y, n_x = det.n_y, su.n_x
+    x = np.arange(n_x)
+    trace_y = np.array([su.nominal_trace_y(k) + 0.3 * np.sin(x / n_x * np.pi)
+                        for k in range(24)])
+    profiles = trace_profiles(trace_y, np.full_like(trace_y, su.trace_sigma_px), n_y=n_y)
+    wave_pixel = np.array([su.nominal_wavelength_m(x + 0.2 * k / 24) for k in range(24)])
+    wave_grid = su.nominal_wavelength_m(np.arange(1.0, n_x - 1.0))
+    p2vm_sc = _nominal_p2vm(inst, wave_grid.size)
+    spectrum = 2000.0 * (1 + 0.3 * np.cos(x / 9.0))
+    model = np.einsum("kyx,kx->yx", profiles, np.tile(spectrum, (24, 1)))
+    frames = rng.poisson(model, (sc_frames, n_y, n_x)) + rng.normal(0, det.read_noise_e,
+                                                                     (sc_frames, n_y, n_x))
+
+    def sc_chunk():
+        ext = optimal_extract(frames, profiles, read_noise=det.read_noise_e, clip=6.0,
+                              nan_policy="mask")
+        spec, var = resample_to_grid(ext.flux, ext.variance, wave_pixel, wave_grid)
+        return invert_combiner(traces_to_outputs(spec, 1), p2vm_sc,
+                               variance=traces_to_outputs(var, 1), nan_policy="propagate")
+    out["sc_pixels_per_s_core"] = _best_rate(sc_chunk, sc_frames * n_y * n_x, min_s=min_s)
+    out["sc_frames_per_s_core"] = out["sc_pixels_per_s_core"] / (n_y * n_x)
+    # binary grid search, one exposure
+    enu = np.array([np.subtract(inst.stations[j].enu_m, inst.stations[i].enu_m)
+                    for i, j in inst.combiner.baselines])
+    lat = np.deg2rad(inst.site.latitude_deg)
+    uvw = uvw_from_enu(enu, np.deg2rad(15.0), np.deg2rad(-35.0), lat)[0]
+    wave = su.nominal_wavelength_m()
+    ch = np.unique(np.linspace(0, wave.size - 1, 32).round().astype(int))
+    radius = float(binary_radius_mas or inst.fibre_fwhm_mas_at_2p2um)
+    gx, gy, _ = search_grid(uvw, wave, radius_mas=radius, step_fraction=0.25)
+    xx, yy = np.meshgrid(gx, gy)
+    inside = np.hypot(xx, yy) <= radius
+    vis2 = rng.uniform(0.3, 0.9, (1, 6, ch.size))
+    t3 = rng.normal(0, 0.05, (1, 4, ch.size))
+    bw = np.full(ch.size, su.dispersion_m_per_px * su.channel_fwhm_px)
+    ratios = np.geomspace(1e-3, 1.5, 16)
+
+    def search():
+        return grid_chi2(vis2, np.full_like(vis2, 0.02), t3, np.full_like(t3, 0.02), uvw,
+                         wave[ch], dra_mas=xx[inside], ddec_mas=yy[inside], flux_ratios=ratios,
+                         bandwidth_m=bw, fibre_fwhm_mas=float(inst.fibre_fwhm_mas_at_2p2um))
+    times = []
+    for _ in range(binary_repeat):
+        t0 = time.perf_counter()
+        search()
+        times.append(time.perf_counter() - t0)
+    out["binary_search_s"] = min(times)
+    out["binary_grid_points"] = int(inside.sum())
+    out["kernel_sizes"] = {"ft_frames": ft_frames, "ft_wave": ft.n_wave, "sc_frames": sc_frames,
+                           "sc_pixels_per_frame": n_y * n_x, "binary_channels": int(ch.size),
+                           "binary_ratios": int(ratios.size)}
+    return out
+
+
+# -- the driver ------------------------------------------------------------------------
+
+def _single_thread_env() -> dict:
+    env = dict(os.environ)
+    for k in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
+              "NUMEXPR_NUM_THREADS"):
+        env[k] = "1"
+    return env
+
+
+def _fresh(path: Path) -> Path:
+    if path.exists():
+        shutil.rmtree(path)
+    return path
+
+
+def _check(res: dict, what: str) -> dict:
+    if "error" in res or res.get("returncode"):
+        raise RuntimeError(f"{what}: {res.get('error') or res.get('returncode')}")
+    if res.get("n_failed"):
+        print(f"  warning: {what}: {res['n_failed']} unit(s) failed, e.g. {res['failed'][:2]}")
+    return res
+
+
+def _table(results: dict) -> str:
+    rows = [("io_floor_ratio", "{:.2f}"), ("reduce_s", "{:.1f}"), ("io_s", "{:.1f}"),
+            ("peak_rss_gib", "{:.2f}"), ("peak_rss_4x_gib", "{:.2f}"),
+            ("memory_ratio", "{:.2f}"), ("scaling_2v1", "{:.2f}"), ("rerun_ratio", "{:.3f}"),
+            ("ft_frames_per_s_core", "{:.3g}"), ("sc_pixels_per_s_core", "{:.3g}"),
+            ("binary_search_s", "{:.2f}"), ("night_bytes", "{:.3g}"), ("cores", "{}")]
+    lines = [f"{'figure':24s} {'value':>12s}  target"]
+    for key, fmt in rows:
+        if key in results and results[key] is not None:
+            op, goal = TARGETS.get(key, ("", None))
+            verdict = ""
+            if goal is not None:
+                ok = {"<=": results[key] <= goal, "<": results[key] < goal,
+                      ">=": results[key] >= goal}[op]
+                verdict = f"{op} {goal:g}  {'met' if ok else 'MISSED'}"
+            lines.append(f"{key:24s} {fmt.format(results[key]):>12s}  {verdict}")
+    return "\n".join(lines)
+
+
+def main(argv=None) -> int:
+    argv = sys.argv[1:] if argv is None else argv
+    if argv[:1] == ["--child"]:
+        answer = _child(json.loads(Path(argv[1]).read_text()))
+        Path(argv[2]).write_text(json.dumps(answer))
+        return 0
+    scenario = os.environ.get("TWINFIELD_BENCH_SCENARIO", "bench")
+    seed = int(os.environ.get("TWINFIELD_BENCH_SEED", "1"))
+    scale = int(os.environ.get("TWINFIELD_BENCH_SCALE", "4"))
+    parts = [p.strip() for p in os.environ.get("TWINFIELD_BENCH_PARTS",
+                                               ",".join(PARTS)).split(",") if p.strip()]
+    unknown = sorted(set(parts) - set(PARTS))
+    if unknown:
+        print(f"TWINFIELD_BENCH_PARTS: unknown part(s) {unknown}; known {list(PARTS)}")
+        return 2
+    out = Path(os.environ.get("TWINFIELD_BENCH_OUT", "build"))
+    out.mkdir(parents=True, exist_ok=True)
+    tag = "" if scenario == "bench" else f"-{Path(scenario).stem}"
+    night_dir, work_root = out / f"bench-night{tag}", out / f"bench-work{tag}"
+    json_path = out / "bench.json"
+    results = json.loads(json_path.read_text()) if json_path.is_file() else {}
+    if (results.get("scenario"), results.get("seed")) != (scenario, seed):
+        results = {}                      # figures of another night are not mixed in
+    results.update(scenario=scenario, seed=seed, cores=os.cpu_count(),
+                   started_utc=results.get("started_utc") or _utc())
+
+    def save():
+        results["updated_utc"] = _utc()
+        json_path.write_text(json.dumps(results, indent=1, sort_keys=True))
+
+    if "kernels" in parts:
+        print("kernels (one thread) ...")
+        res = _check(run_child({"what": "kernels"}, env=_single_thread_env()), "kernels")
+        results.update({k: res[k] for k in ("ft_frames_per_s_core", "sc_pixels_per_s_core",
+                                            "sc_frames_per_s_core", "binary_search_s",
+                                            "binary_grid_points", "kernel_sizes")})
+        save()
+    if not set(parts) - {"kernels"}:
+        print(_table(results))
+        return 0
+    night = ensure_night(night_dir, scenario, seed=seed)
+    results["night_bytes"] = night_bytes(night)
+    config = work_root / "bench-params.toml"
+    work_root.mkdir(parents=True, exist_ok=True)
+    config.write_text("[binary]\nambiguous_dchi2 = 10.0\n")
+    full = work_root / "threads"
+    if "reduce" in parts or "rerun" in parts:
+        print(f"full reduce (threads, {os.cpu_count()} cores) ...")
+        res = _check(run_child({"what": "reduce", "night": str(night), "work": str(_fresh(full)),
+                                "config": [str(config)]}), "reduce")
+        results.update(reduce_s=res["seconds"], reduce_wall_s=res["wall_s"],
+                       reduce_failed=res["n_failed"],
+                       peak_rss_gib=max(res["tree_peak_rss_bytes"],
+                                        res["self_max_rss_bytes"]) / GIB)
+        save()
+        print("I/O floor ...")
+        io = io_floor(night, full, scratch=work_root / "io-scratch")
+        results.update(io_s=io["io_s"], io_detail=io,
+                       io_floor_ratio=results["reduce_s"] / io["io_s"])
+        save()
+    if "rerun" in parts:
+        print("rerun of binary after a parameter change ...")
+        config.write_text("[binary]\nambiguous_dchi2 = 12.0\n")
+        res = _check(run_child({"what": "rerun", "work": str(full), "stage": "binary"}),
+                     "rerun")
+        results.update(rerun_s=res["seconds"], rerun_computed=res["computed"],
+                       rerun_ratio=res["seconds"] / results["reduce_s"])
+        save()
+    if "scaling" in parts:
+        from distributed import LocalCluster
+        times = {}
+        for n in (1, 2):
+            print(f"reduce on a LocalCluster of {n} worker(s) ...")
+            with LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                              dashboard_address=None) as cluster:
+                res = _check(run_child({"what": "reduce", "night": str(night),
+                                        "work": str(_fresh(work_root / f"dist{n}")),
+                                        "scheduler": cluster.scheduler_address}),
+                             f"distributed reduce ({n} workers)")
+            times[n] = res["seconds"]
+        results.update(dist_1_worker_s=times[1], dist_2_workers_s=times[2],
+                       scaling_2v1=times[1] / times[2])
+        save()
+    if "memory" in parts:
+        from .simulate.scenario import _resolve
+        text = scaled_scenario_text(_resolve(scenario).read_text(), scale)
+        scen_path = out / f"bench-scenario{tag}-x{scale}.toml"
+        if not scen_path.is_file() or scen_path.read_text() != text:
+            scen_path.write_text(text)
+        big = ensure_night(out / f"bench-night{tag}-x{scale}", scen_path, seed=seed)
+        results["night_bytes_scaled"] = night_bytes(big)
+        print(f"reduce of the {scale}x night (threads) ...")
+        res = _check(run_child({"what": "reduce", "night": str(big),
+                                "work": str(_fresh(work_root / f"x{scale}"))}), "scaled reduce")
+        results.update(peak_rss_4x_gib=max(res["tree_peak_rss_bytes"],
+                                           res["self_max_rss_bytes"]) / GIB,
+                       reduce_4x_s=res["seconds"], memory_scale=scale)
+        if results.get("peak_rss_gib"):
+            results["memory_ratio"] = results["peak_rss_4x_gib"] / results["peak_rss_gib"]
+        save()
+    save()
+    print(_table(results))
+    print(f"written {json_path}")
     return 0
+
+
+def _utc() -> str:
+    return time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
 
 
 if __name__ == "__main__":
