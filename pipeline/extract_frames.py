@@ -51,6 +51,24 @@ def _read_noise_map(rn, good, *, noisy_factor: float = 3.0):
     return np.where(np.isfinite(rn) & (rn > noisy_factor * typical), rn, typical)
 
 
+def _extraction_weights(flux, profiles, var_pix, valid):
+    """Sum over a chunk's frames of the optimal-extraction weights (trace, y, x): the
+    extracted flux of trace k in column x is sum_y w_ky D_y with w = P / V / sum_y P^2 / V
+    (Horne 1986, PASP 98, 609), V = ``var_pix`` + the model's Poisson term, as in the
+    extraction's last iteration (overlap between neighbouring traces neglected).
+
+    flux (frame, trace, x) e- (NaN = not extracted); profiles (trace, y, x);
+    var_pix (y, x) e-^2; valid (frame, y, x) bool."""
+    out = np.zeros(profiles.shape)
+    for f_k, ok in zip(np.nan_to_num(np.asarray(flux, float)), valid):
+        model = np.einsum("kyx,kx->yx", profiles, f_k)
+        ivar = np.where(ok, 1.0 / (var_pix + np.maximum(model, 0.0)), 0.0)
+        pw = profiles * ivar
+        norm = np.einsum("kyx,kyx->kx", pw, profiles)
+        out += pw / np.where(norm > 0, norm, np.inf)[:, None, :]
+    return out
+
+
 def sky_background(raw, *, frames_per_chunk: int = 16, kappa: float = 5.0) -> np.ndarray:
     """Clipped mean (the master-dark estimator) of a sky exposure's frames, (y, x), ADU
     (bias, dark and sky included)."""
@@ -118,9 +136,12 @@ def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, backgroun
     n_bg = background_frames if background is not None else getattr(dark, "attrs", {}).get(
         "n_frame")
     # per-pixel noise of one frame, plus that of the subtracted background image
+    # variance of the subtracted image's own noise: common to every frame
+    var_common = (rn_e ** 2 + sky_e) / n_bg if n_bg else None
     rn_e = np.sqrt((rn_e ** 2 + sky_e) * (1.0 + (1.0 / n_bg if n_bg else 0.0)))
     dit = raw.dit
     parts = {k: [] for k in ("flux", "flux_var", "coherent", "coherent_var", "n_rej")}
+    w_sum, n_seen = np.zeros(profiles.shape), 0
     for pix in _blocks(raw.science_pixels(frames_per_chunk)):
         if pix.shape[1:] != master.shape:
             raise BadInput(raw.path, f"science frames are {pix.shape[1:]}, the dark "
@@ -129,6 +150,9 @@ def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, backgroun
         e = np.where(valid, (pix - bg) * det.gain_e_per_adu / response, 0.0)
         ext = optimal_extract(e, profiles, read_noise=rn_e, valid=valid, clip=clip,
                               nan_policy="mask")
+        if var_common is not None:
+            w_sum += _extraction_weights(ext.flux, profiles, rn_e ** 2, valid)
+            n_seen += pix.shape[0]
         spec, var = resample_to_grid(ext.flux, ext.variance, wave_pixel, wave_grid)
         res = invert_combiner(traces_to_outputs(spec / dit, n_pol), p2vm,
                               variance=traces_to_outputs(var / dit ** 2, n_pol),
@@ -140,7 +164,24 @@ def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, backgroun
         parts["n_rej"].append(ext.n_rejected)
     cat = {k: np.concatenate(v) for k, v in parts.items()}
     tel, base = ("frame", "pol", "telescope", "wave"), ("frame", "pol", "baseline", "wave")
-    return {
+    common = {}
+    if var_common is not None and n_seen:
+        # error of the exposure mean due to the subtracted image: the frames' mean
+        # extraction weights applied to its per-pixel variance, then resampling and P2VM
+        w_bar = w_sum / n_seen                                          # (trace, y, x)
+        v_tr = np.einsum("kyx,yx->kx", w_bar ** 2, var_common)
+        _, v_grid = resample_to_grid(np.zeros_like(v_tr), v_tr, wave_pixel, wave_grid)
+        v_out = traces_to_outputs(v_grid / dit ** 2, n_pol)
+        res = invert_combiner(np.zeros_like(v_out), p2vm, variance=v_out,
+                              nan_policy="propagate")
+        common = {
+            "flux_var_common": Array(res.flux_var, tel[1:], "(e-/s)^2",
+                                     "part of flux_var common to every frame (subtracted "
+                                     "background noise), for the exposure mean"),
+            "coherent_var_common": Array(res.coherent_var, base[1:], "(e-/s)^2",
+                                         "part of coherent_var common to every frame "
+                                         "(subtracted background noise), for the exposure mean")}
+    return {**common,
         "flux": Array(cat["flux"], tel, "e-/s", "photometric flux per telescope"),
         "flux_var": Array(cat["flux_var"], tel, "(e-/s)^2"),
         "coherent": Array(cat["coherent"], base, "e-/s", "coherent flux C_ij"),

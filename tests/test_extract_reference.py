@@ -182,6 +182,22 @@ def test_noise_is_honest_on_sky(night, instrument):
     fc, fv = out["ft_coherent"].data.compute(), out["ft_coherent_var"].data.compute()
     zf = np.concatenate([(fc.real / np.sqrt(fv)).ravel(), (fc.imag / np.sqrt(fv)).ravel()])
     assert 0.96 < zf.std() < 1.04, zf.std()            # 28800 values: +-1 % is 1 sigma
+    # the exposure mean: the per-frame noise averages down, the subtracted master's does not
+    # (it is the same in every frame), so var(mean) = (var - var_common) / N + var_common
+    vc, n = out["coherent_var_common"].data, c.shape[0]
+    assert vc.shape == c.shape[1:] and (vc > 0).all() and (vc < v.min(axis=0)).all()
+    # a pure-noise pixel: the master's variance is 1/n_frame (4 dark frames) of a frame's
+    # own, so the common part is 1/(1 + 4) of coherent_var, a little less with the sky light
+    assert 0.12 < np.median(vc / v.mean(axis=0)) < 0.21
+    vm = (v.mean(axis=0) - vc) / n + vc
+    cm = c.mean(axis=0)
+    zm = np.concatenate([(cm.real / np.sqrt(vm)).ravel(), (cm.imag / np.sqrt(vm)).ravel()])
+    # 264 values (~130 independent): the std is known to ~6 %; without the common term
+    # the expected width is sqrt(0.5 / 0.3125) ~ 1.26
+    assert 0.85 < zm.std() < 1.15, zm.std()
+    naive = np.concatenate([(cm.real / np.sqrt(v.mean(axis=0) / n)).ravel(),
+                            (cm.imag / np.sqrt(v.mean(axis=0) / n)).ravel()])
+    assert naive.std() > zm.std() * 1.1, (naive.std(), zm.std())
 
 
 def test_contrast_loss_matches_truth(calibrator):
