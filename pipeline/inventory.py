@@ -96,11 +96,22 @@ class Inventory:
         if not night.is_dir():
             raise BadInput(night, "night directory not found")
         inv = cls(str(night))
-        for path in sorted(night.glob("*.fits")):
+        paths = sorted(night.glob("*.fits"))
+        if not paths:
+            raise BadInput(night, "no raw files (*.fits) in the night directory")
+        seen = {}      # primary-header hash -> first file: a copied file is one exposure
+        for path in paths:
             try:
-                inv.records.append(Record.from_raw(RawExposure(path, instrument)))
+                rec = Record.from_raw(RawExposure(path, instrument))
             except BadInput as exc:
                 inv.bad.append((exc.path, exc.problem))
+                continue
+            first = seen.setdefault(rec.identity[3], rec.path)
+            if first != rec.path:
+                inv.bad.append((rec.path, f"duplicate of {Path(first).name} (identical primary "
+                                          "header); ignored"))
+            else:
+                inv.records.append(rec)
         inv.records.sort(key=lambda r: (r.mjd, r.expno, r.path))
         return inv
 

@@ -88,7 +88,21 @@ class _MemmapBlock:
             out *= self.scale
         if self.zero:
             out += self.zero
+        if self.field is None and out.ndim == 3 and out.shape[1:] == self.shape[1:]:
+            _check_frames(self.path, out, index[0])
         return out
+
+
+def _check_frames(path, frames, rows):
+    """A whole frame at 0 ADU (dead detector, empty read-out) or at the 16-bit ceiling
+    (saturated everywhere) carries no signal: BadInput naming the frame."""
+    first = (rows.start or 0) if isinstance(rows, slice) else 0
+    flat = frames.reshape(frames.shape[0], -1)
+    for what, test in (("0 ADU in every pixel (dead detector or empty read-out)", flat == 0),
+                       ("saturated (65535 ADU) in every pixel", flat >= 65535)):
+        dead = np.flatnonzero(test.all(axis=1))
+        if dead.size:
+            raise BadInput(path, f"science frame {first + dead[0]} is {what}")
 
 
 class RawExposure:
@@ -179,13 +193,17 @@ class RawExposure:
         if kind == "calibrator" and not (values["CALDIAM"] >= 0 and values["CALDIAME"] >= 0):
             raise BadInput(p, "header keywords CALDIAM/CALDIAME must be non-negative")
         try:
-            t = Time(values["DATE-OBS"], format="isot", scale="utc")
+            with warnings.catch_warnings():     # dates beyond the leap-second table
+                warnings.simplefilter("ignore")
+                t = Time(values["DATE-OBS"], format="isot", scale="utc")
         except ValueError:
             raise BadInput(p, f"header keyword DATE-OBS={values['DATE-OBS']!r} is not an "
                               "ISO 8601 date") from None
         if not 1990 < t.jyear < 2200:
             raise BadInput(p, f"header keyword DATE-OBS={values['DATE-OBS']!r} is not a "
                               "plausible date")
+        if t.mjd > Time.now().mjd + 1.0:
+            raise BadInput(p, f"header keyword DATE-OBS={values['DATE-OBS']!r} is in the future")
         if abs(t.mjd - values["MJD-OBS"]) * 86400.0 > 1.0:
             raise BadInput(p, f"header keywords DATE-OBS={values['DATE-OBS']!r} and "
                               f"MJD-OBS={values['MJD-OBS']} disagree by more than 1 s")
@@ -310,13 +328,22 @@ class RawExposure:
                                       f"found {counts.shape}")
         return counts
 
+    def _finite(self, ext, name, values):
+        bad = ~np.isfinite(values)
+        if bad.any():
+            rows = np.flatnonzero(bad.reshape(bad.shape[0], -1).any(axis=1))
+            raise BadInput(self.path, f"extension {ext} column {name} has {rows.size} row(s) "
+                                      f"with NaN or infinite values (first: row {rows[0]})")
+        return values
+
     def ft_time(self) -> np.ndarray:
         """End time of each fringe-tracker frame, (ft_frame,), s since DATE-OBS."""
-        return self._column("FT_PIX", "TIME")
+        return self._finite("FT_PIX", "TIME", self._column("FT_PIX", "TIME"))
 
     def frame_times(self) -> tuple[np.ndarray, np.ndarray]:
         """(start, exposure) of each science frame, (frame,) each, s since DATE-OBS."""
-        start, exp = self._column("SCI_TIME", "T_START"), self._column("SCI_TIME", "T_EXP")
+        start, exp = (self._finite("SCI_TIME", c, self._column("SCI_TIME", c))
+                      for c in ("T_START", "T_EXP"))
         if start.shape[0] != self.nframe:
             raise BadInput(self.path, f"SCI_TIME has {start.shape[0]} rows, NFRAME says "
                                       f"{self.nframe}")
@@ -324,7 +351,8 @@ class RawExposure:
 
     def metrology(self) -> tuple[np.ndarray, np.ndarray]:
         """(time (sample,) s since DATE-OBS, path (sample, 4) m)."""
-        time, path = self._column("METROLOGY", "TIME"), self._column("METROLOGY", "PATH")
+        time, path = (self._finite("METROLOGY", c, self._column("METROLOGY", c))
+                      for c in ("TIME", "PATH"))
         if path.ndim != 2 or path.shape[1] != 4:
             raise BadInput(self.path, f"METROLOGY PATH should be (sample, 4), found {path.shape}")
         return time, path
