@@ -18,7 +18,7 @@ import pytest
 
 from pipeline.observables import OutputsView, average_product, calibrate_product
 from pipeline.rawio import RawExposure
-from pipeline.skymodel import MAS, binary_visibility
+from pipeline.truth_pulls import product_pulls
 
 from test_extract_reference import calibrated_night, extract_and_reference
 
@@ -127,19 +127,9 @@ def binary_night(instrument, tmp_path_factory):
 
 
 def _chi2_red(sci, file_truth, instrument):
-    """Mean squared pulls of V2 and closure phase against the truth binary model."""
-    t = file_truth
-    x1, y1 = (v * MAS for v in t["primary_offset_mas"])
-    uvw, wave = sci["uvw"], sci["wave"]
-    model = binary_visibility(uvw[:, :1], uvw[:, 1:2], wave, dx_rad=t["companion_dra_mas"] * MAS,
-                              dy_rad=t["companion_ddec_mas"] * MAS, flux_ratio=t["flux_ratio"],
-                              x1_rad=x1, y1_rad=y1, bandwidth_m=sci["band"],
-                              fibre_fwhm_rad_at_2p2um=instrument.fibre_fwhm_mas_at_2p2um * MAS)
-    k = {b: n for n, b in enumerate(instrument.combiner.baselines)}
-    t3 = np.array([np.angle(model[k[(a, b)]] * model[k[(b, c)]] * np.conj(model[k[(a, c)]]))
-                   for a, b, c in instrument.combiner.triangles])
-    r2 = (sci["vis2"] - np.abs(model) ** 2) / sci["vis2_err"]
-    rt = np.angle(np.exp(1j * (sci["t3phi"] - t3))) / sci["t3phi_err"]
+    """Mean squared pulls of V2 and closure phase against the truth binary model
+    (pipeline.skymodel.binary_visibility through pipeline.truth_pulls)."""
+    r2, rt = product_pulls(sci, file_truth, instrument)
     return float(np.mean(r2 ** 2)), float(np.mean(rt ** 2))
 
 
