@@ -11,7 +11,6 @@ extraction, referencing, averaging and calibration. Expected values: the truth f
 attenuation and the channels' true bandwidths).
 """
 
-import json
 
 import numpy as np
 import pytest
