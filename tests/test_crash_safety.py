@@ -1,0 +1,81 @@
+# SPDX-License-Identifier: BSD-3-Clause
+"""Crash safety: ``twinfield reduce`` killed (SIGKILL, no clean-up possible) at seeded
+random moments, then allowed to finish, gives exactly the clean run's products and
+astrometry table; after every kill, no product the engine would trust fails to open."""
+
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pytest
+
+import pipeline.engine as engine
+from pipeline.store import is_complete
+from robust_night import (astrometry_rows, clean_work, differing_products, night_path,
+                          product_files, read_datasets, same_array)
+
+pytestmark = pytest.mark.slow
+
+N_KILLS = 3
+
+
+def _reduce_cmd(night, work):
+    return [sys.executable, "-m", "pipeline.cli", "reduce", str(night), "-o", str(work)]
+
+
+def _wait_for(path, proc, timeout=120.0):
+    t0 = time.monotonic()
+    while not path.exists():
+        if proc.poll() is not None or time.monotonic() - t0 > timeout:
+            return False
+        time.sleep(0.05)
+    return True
+
+
+def _nothing_untrustworthy(work):
+    """Every product file under its final name is complete and readable, and every
+    product ``status`` calls current opens with all its datasets."""
+    for name, path in product_files(work).items():
+        assert is_complete(path), f"{name} has its final name but is incomplete"
+    for row in engine.status(work):
+        if row["state"] == "current":
+            read_datasets(row["path"])
+
+
+def test_killed_reductions_then_finished_equal_a_clean_run(tmp_path_factory, tiny_night,
+                                                           tmp_path):
+    clean = clean_work(tmp_path_factory, tiny_night)
+    night = night_path(tmp_path_factory, tiny_night)
+    work = tmp_path / "work"
+    rng = np.random.default_rng(8)             # seeded kill moments
+    kills, attempts = 0, 0
+    while kills < N_KILLS and attempts < 2 * N_KILLS:
+        attempts += 1
+        work.mkdir(exist_ok=True)
+        proc = subprocess.Popen(_reduce_cmd(night, work), stdout=subprocess.DEVNULL,
+                                stderr=subprocess.DEVNULL)
+        try:
+            # The lock appears once the command has started; kill 0.5-6 s later (the
+            # tiny night takes tens of seconds, so every kill lands inside some stage).
+            assert _wait_for(work / engine.LOCK_FILE, proc), "reduce never took the lock"
+            time.sleep(rng.uniform(0.5, 6.0))
+            if proc.poll() is None:
+                os.kill(proc.pid, signal.SIGKILL)
+                kills += 1
+        finally:
+            proc.wait()
+        _nothing_untrustworthy(work)
+    assert kills == N_KILLS
+
+    done = subprocess.run(_reduce_cmd(night, work), capture_output=True, text=True)
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert "0 failed" in done.stdout
+    assert not list(work.glob("*/.*.tmp")), "temporary files of killed runs were left"
+    assert not (work / engine.LOCK_FILE).exists()
+    # Products lost or different from the clean run: none (same keys, same datasets).
+    assert differing_products(work, clean) == []
+    assert {r["state"] for r in engine.status(work)} == {"current"}
+    assert same_array(astrometry_rows(work), astrometry_rows(clean))
