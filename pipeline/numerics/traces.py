@@ -102,17 +102,16 @@ def _check_image(image, valid, name="image"):
     return np.where(valid, image, 0.0), valid
 
 
-def _column_fit(image, valid, c0, s0, *, n_iter=40, fit_shape=True):
+def _column_fit(image, valid, c0, s0, *, n_iter=15, fit_shape=True):
     """Joint least-squares fit, column by column (vectorised over x), of
     background + sum_k a_k P(y; c_k, s_k). Returns a, c, s of shape (trace, x).
 
     With ``fit_shape`` False only the amplitudes and one background per column are
     solved (linear, all traces jointly). Otherwise each trace is fitted in a window
-    of rows (amplitude, centre, width; one Levenberg-Marquardt step) after
-    subtracting the column's background and the current model of every other
-    trace, then the backgrounds are re-estimated, and the sweep is repeated (block
-    coordinate descent on the joint least-squares problem: neighbours overlap
-    weakly, so it converges in a few sweeps)."""
+    of rows around it (amplitude, centre, width), all traces of a column jointly
+    (Levenberg-Marquardt; neighbours couple through the rows their windows share,
+    giving a block-tridiagonal system solved by the block Thomas algorithm), with
+    one background per column re-estimated between iterations."""
     n_y, n_x = image.shape
     n_t = c0.shape[0]
     if not fit_shape:
@@ -129,36 +128,66 @@ def _column_fit(image, valid, c0, s0, *, n_iter=40, fit_shape=True):
     offs = np.arange(-h, h + 1)
     xi = np.arange(n_x)[None, :, None]
     w_img = valid.astype(float)
+    xx = np.broadcast_to(xi, (n_t, n_x, offs.size))
 
     def gather(arr, rows):
         return arr[np.clip(rows, 0, n_y - 1), xi]
 
-    rows = np.rint(c)[..., None].astype(int) + offs
     a = np.maximum(gather(image, np.rint(c)[..., None].astype(int))[..., 0], 0.0) \
         * np.sqrt(2 * np.pi) * s
-    bkg = np.zeros(n_x)
-    xx = np.broadcast_to(xi, (n_t, n_x, offs.size))
+    lam = 1e-3
     for _ in range(n_iter):
-        rows = np.rint(c)[..., None].astype(int) + offs              # (trace, x, win)
+        base = np.rint(c).astype(int)
+        rows = base[..., None] + offs                                # (trace, x, win)
         inside = (rows >= 0) & (rows < n_y)
         p, dc, ds = _pix_gauss(rows.astype(float), c[..., None], s[..., None])
         model_all = np.zeros((n_y, n_x))                             # traces in their windows
         np.add.at(model_all, (np.clip(rows, 0, n_y - 1), xx), a[..., None] * p * inside)
         bkg = np.sum(w_img * (image - model_all), 0) / np.maximum(w_img.sum(0), 1)
-        res = gather(image - model_all - bkg[None, :], rows)         # others and own
+        res = gather(image - model_all - bkg[None, :], rows)
         w = gather(w_img, rows) * inside
-        jac = np.stack([p, a[..., None] * dc, a[..., None] * ds], -1)
+        jac = np.stack([p, a[..., None] * dc, a[..., None] * ds], -1)  # (trace, x, win, 3)
         jw = jac * w[..., None]
-        lhs = np.einsum("kxwi,kxwj->kxij", jw, jac)
-        rhs = np.einsum("kxwi,kxw->kxi", jw, res)
-        diag = np.einsum("kxii->kxi", lhs)
-        lhs = lhs + (1e-3 * diag + 1e-12 * diag.max(-1, keepdims=True) + 1e-300)[..., None] \
+        diag_blk = np.einsum("kxwi,kxwj->kxij", jw, jac)
+        grad = np.einsum("kxwi,kxw->kxi", jw, res)
+        # coupling of neighbours k, k+1 through the rows both windows cover
+        shift = base[1:] - base[:-1]                                 # (trace-1, x)
+        j_idx = np.arange(offs.size)[None, None, :] - shift[..., None]
+        ok = (j_idx >= 0) & (j_idx < offs.size)
+        jn = np.take_along_axis(jac[1:], np.clip(j_idx, 0, offs.size - 1)[..., None], axis=2)
+        up_blk = np.einsum("kxwi,kxwj->kxij", jw[:-1], jn * ok[..., None])
+        dd = np.einsum("kxii->kxi", diag_blk)
+        diag_blk = diag_blk + (lam * dd + 1e-12 * dd.max(-1, keepdims=True) + 1e-300)[..., None] \
             * np.eye(3)
-        step = np.linalg.solve(lhs, rhs[..., None])[..., 0]
+        step = _block_tridiagonal_solve(diag_blk, up_blk, grad)
         a = a + step[..., 0]
         c = c + np.clip(step[..., 1], -0.5, 0.5)
         s = np.clip(s + np.clip(step[..., 2], -0.3, 0.3), 0.3, 5.0)
     return a, c, s
+
+
+def _block_tridiagonal_solve(diag, upper, rhs):
+    """Solve a symmetric block-tridiagonal system (block Thomas algorithm), batched.
+
+    diag (n, ..., m, m), upper (n-1, ..., m, m) (block k, k+1), rhs (n, ..., m)."""
+    n = diag.shape[0]
+    cp = [None] * n
+    gp = [None] * n
+    m_inv = np.linalg.inv(diag[0])
+    gp[0] = (m_inv @ rhs[0][..., None])[..., 0]
+    if n > 1:
+        cp[0] = m_inv @ upper[0]
+    for k in range(1, n):
+        lo = np.swapaxes(upper[k - 1], -1, -2)
+        m_inv = np.linalg.inv(diag[k] - lo @ cp[k - 1])
+        gp[k] = (m_inv @ (rhs[k] - (lo @ gp[k - 1][..., None])[..., 0])[..., None])[..., 0]
+        if k < n - 1:
+            cp[k] = m_inv @ upper[k]
+    out = np.empty_like(rhs)
+    out[n - 1] = gp[n - 1]
+    for k in range(n - 2, -1, -1):
+        out[k] = gp[k] - (cp[k] @ out[k + 1][..., None])[..., 0]
+    return out
 
 
 def _robust_polyfit(x, values, weights, deg, *, clip=4.0, n_iter=4):
@@ -235,6 +264,10 @@ def find_traces(flat, nominal_y, *, valid=None, nominal_sigma: float = 1.0,
     noise = np.sqrt(np.abs(a) * 2.5 * s + 5 * s * read_noise ** 2 + 1e-12)
     weight = np.where((a > min_snr * noise) & np.isfinite(c) & np.isfinite(s),
                       (a / noise) ** 2, 0.0)
+    # a column whose fit ran away (blended neighbours) can claim a huge amplitude:
+    # cap every weight at 4 x the trace's median so that no column dominates
+    med = np.array([np.median(wk[wk > 0]) if np.any(wk > 0) else 0.0 for wk in weight])
+    weight = np.minimum(weight, 4 * med[:, None])
     x = np.arange(n_x, dtype=float)
     x_ref, x_scale = (n_x - 1) / 2, max((n_x - 1) / 2, 1.0)
     xs = (x - x_ref) / x_scale
@@ -244,6 +277,11 @@ def find_traces(flat, nominal_y, *, valid=None, nominal_sigma: float = 1.0,
                          f"(amplitude > {min_snr} x noise) to fit their position")
     cc, used = _robust_polyfit(xs, c, weight, centre_deg)
     sc, used_s = _robust_polyfit(xs, s, np.where(used, weight, 0.0), sigma_deg)
+    # the laws fitted to the whole image, from the per-column centres and the nominal
+    # width (per-column widths of blended neighbours are too poorly determined to start from)
+    sc0 = np.zeros_like(sc)
+    sc0[:, 0] = nominal_sigma
+    cc, sc = _refine_laws(image, valid, xs, cc, sc0, lit=weight > 0)
     trace_y = np.stack([npoly.polyval(xs, cc[k]) for k in range(n_t)])
     sigma = np.stack([npoly.polyval(xs, sc[k]) for k in range(n_t)])
     res = np.where(used, c - trace_y, np.nan)
@@ -251,6 +289,58 @@ def find_traces(flat, nominal_y, *, valid=None, nominal_sigma: float = 1.0,
     return TraceFit(trace_y=trace_y, profile_sigma=sigma, centre_coeffs=cc, sigma_coeffs=sc,
                     x_ref=float(x_ref), x_scale=float(x_scale), centre_measured=c,
                     sigma_measured=s, amplitude=a, fit_used=used, centre_residual_rms=rms)
+
+
+def _refine_laws(image, valid, xs, cc, sc, *, lit, n_iter=12):
+    """Fit the polynomial laws of centre and width directly to the image (all columns
+    at once), alternating a joint linear solve of the per-column amplitudes with a
+    Levenberg-Marquardt step of the coefficients. Blended neighbours (split
+    polarisation) are badly determined column by column; the laws are not.
+    Coefficient blocks of neighbouring traces couple: block-tridiagonal solve."""
+    n_y, n_x = image.shape
+    n_t, nc = cc.shape[0], cc.shape[1]
+    basis_c = np.stack([xs ** j for j in range(nc)], -1)               # (x, nc)
+    basis_s = np.stack([xs ** j for j in range(sc.shape[1])], -1)
+    h = int(np.ceil(3.5 * max(float(np.max(npoly.polyval(xs, sc.T))), 1.0)))
+    offs = np.arange(-h, h + 1)
+    xi = np.arange(n_x)[None, :, None]
+    w_img = valid.astype(float)
+    lam = 1e-3
+    for _ in range(n_iter):
+        c = np.stack([npoly.polyval(xs, cc[k]) for k in range(n_t)])
+        sg = np.stack([npoly.polyval(xs, sc[k]) for k in range(n_t)])
+        a, model = fit_amplitudes(image, c, sg, valid=valid)
+        a = np.where(lit, a, 0.0)                                      # dark columns: no pull
+        base = np.rint(c).astype(int)
+        rows = base[..., None] + offs
+        inside = (rows >= 0) & (rows < n_y)
+        r = np.clip(rows, 0, n_y - 1)
+        p, dc, ds = _pix_gauss(rows.astype(float), c[..., None], sg[..., None])
+        res = (image - model)[r, xi]
+        w = w_img[r, xi] * inside
+        jc = (a[..., None] * dc)[..., None] * basis_c[None, :, None, :]  # (trace, x, win, nc)
+        js = (a[..., None] * ds)[..., None] * basis_s[None, :, None, :]
+        jac = np.concatenate([jc, js], -1)
+        jw = jac * w[..., None]
+        diag_blk = np.einsum("kxwi,kxwj->kij", jw, jac)
+        grad = np.einsum("kxwi,kxw->ki", jw, res)
+        shift = base[1:] - base[:-1]
+        j_idx = np.arange(offs.size)[None, None, :] - shift[..., None]
+        ok = (j_idx >= 0) & (j_idx < offs.size)
+        jn = np.take_along_axis(jac[1:], np.clip(j_idx, 0, offs.size - 1)[..., None], axis=2)
+        up_blk = np.einsum("kxwi,kxwj->kij", jw[:-1], jn * ok[..., None])
+        dd = np.einsum("kii->ki", diag_blk)
+        diag_blk = diag_blk + (lam * dd + 1e-12 * dd.max(-1, keepdims=True) + 1e-300)[..., None] \
+            * np.eye(jac.shape[-1])
+        step = _block_tridiagonal_solve(diag_blk, up_blk, grad)
+        # trust region: at most 0.1 px of centre and 5% of width per iteration
+        dcen = np.abs(step[:, :nc] @ basis_c.T).max(1)
+        dsig = (np.abs(step[:, nc:] @ basis_s.T) / sg).max(1)
+        scale = np.minimum(1.0, np.minimum(0.1 / np.maximum(dcen, 1e-12),
+                                           0.05 / np.maximum(dsig, 1e-12)))
+        cc = cc + scale[:, None] * step[:, :nc]
+        sc = sc + scale[:, None] * step[:, nc:]
+    return cc, sc
 
 
 def fit_amplitudes(image, trace_y, profile_sigma, *, valid=None):
