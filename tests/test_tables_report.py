@@ -187,7 +187,9 @@ def tiny_reduced(request, tmp_path_factory):
     stages = _chain()
     night = Path(request.getfixturevalue("tiny_night"))
     work = tmp_path_factory.mktemp("work_binary")
-    summary = reduce(night, work, stages=stages, progress=False)
+    config = work.parent / "binary_fast.toml"           # fewer bootstrap refits: speed only
+    config.write_text("[binary]\nn_boot = 12\n")
+    summary = reduce(night, work, stages=stages, config=[config], progress=False)
     truth = json.loads((night / "truth.json").read_text())
     fits = [ProductView(p).attrs for p in sorted((work / "binary").glob("*.h5"))]
     return summary, work, [(a, truth["files"][a["exposure"]]) for a in fits]
