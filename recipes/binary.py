@@ -32,7 +32,7 @@ class BinaryParams:
     search_max_channels: int = 32    # channels used by the grid search
     ambiguous_dchi2: float = 10.0    # runner-up closer than this (scaled chi2): flag 1
     chi2_red_min: float = 0.25       # chi2_red below: flag 8
-    chi2_red_max: float = 3.0        # chi2_red above: flag 8
+    chi2_red_max: float = 5.0        # chi2_red above: flag 8 (errors scaled by chi2_red > 1)
     seed: int = 20261202             # bootstrap seed; each exposure adds the CRC32 of its label
 
     def __post_init__(self):

@@ -69,7 +69,8 @@ def night(tmp_path_factory, instrument):
         path = write_product(work / "binary" / f"{label}.b{k}.h5", out, {"key": f"binary-b{k}"})
         views.append(ProductView(path))
     qc = {"flat": {"profile_sigma": Array(1 + 0.02 * rng.normal(size=(24, 16)), ("trace", "x"))},
-          "wavecal": {"wave_pixel": Array(np.broadcast_to(WAVE, (24, 16)).copy(), ("trace", "x"), "m"),
+          "wavecal": {"wave_pixel": Array(np.broadcast_to(WAVE, (24, 16)).copy(), ("trace", "x"),
+                                          "m"),
                       "wave_measured": Array(WAVE + 1e-10 * rng.normal(size=(24, 16)),
                                              ("trace", "x"), "m")},
           "combiner": {"condition": Array(3 + rng.random((1, 16)), ("pol", "wave"))},

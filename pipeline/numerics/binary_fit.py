@@ -254,7 +254,7 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
                fit_slope: bool = False, diameters_mas=(0.0, 0.0), fit_diameters=(False, False),
                pointing_sigma_mas: float = 0.0, n_start: int = 5,
                n_boot: int = 50, search_max_channels: int = 32, ambiguous_dchi2: float = 10.0,
-               chi2_red_range=(0.25, 3.0), bootstrap: Literal["auto", "channels", "none"] = "auto",
+               chi2_red_range=(0.25, 5.0), bootstrap: Literal["auto", "channels", "none"] = "auto",
                seed: int = 0) -> BinaryFitResult:
     """Fit a binary to one exposure's observables.
 
@@ -428,7 +428,8 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
         runner_up_ddec=float(runner.params["ddec"].value) if runner is not None else nan,
         runner_up_dchi2=dchi2, cov_fit=pos_fit, cov_boot=pos_boot,
         error_source=source, bootstrap_kind="+".join(boots) or "none",
-        n_boot=max((len(v) for v in boots.values()), default=0), grid_dra=gx, grid_ddec=gy, chi2_map=chi2_map, minima=minima,
+        n_boot=max((len(v) for v in boots.values()), default=0), grid_dra=gx, grid_ddec=gy,
+        chi2_map=chi2_map, minima=minima,
         params_json=params_to_json(bp), flag_names=tuple(k for k, b in FLAGS.items() if flag & b))
 
 
