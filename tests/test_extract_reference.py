@@ -387,3 +387,33 @@ def test_engine_calibrator_point_like(reduced, instrument):
     dphi = np.angle(c * np.conj(c.mean(axis=0)))
     assert np.abs(dphi).max() < 0.25
     assert ref["frame_valid"][()].all()
+
+
+def test_extraction_weights_reproduce_optimal_extraction(rng):
+    """The weights used for the common-noise variance are those of the optimal extraction
+    (Horne 1986, PASP 98, 609): applied to a frame they give its fluxes, and a fixed error
+    image of per-pixel variance vc added to every frame moves the exposure's mean flux with
+    variance sum_y w^2 vc (checked by extracting 200 such draws)."""
+    from pipeline.extract_frames import _extraction_weights
+    from pipeline.numerics.extraction import optimal_extract
+    from pipeline.numerics.traces import trace_profiles
+    n_t, n_y, n_x, rn = 4, 50, 10, 5.0
+    # traces 10 px apart, 1 px wide: no overlap (the weights neglect it)
+    prof = trace_profiles(np.repeat(np.arange(10.0, 50.0, 10.0)[:, None], n_x, 1),
+                          np.full((n_t, n_x), 1.0), n_y=n_y)
+    flux = rng.uniform(200, 2000, size=(1, n_t, n_x))
+    clean = np.einsum("kyx,fkx->fyx", prof, flux)
+    frames = clean + rng.normal(size=(3,) + clean.shape[1:]) * np.sqrt(rn ** 2 + clean)
+    var_pix = np.full((n_y, n_x), rn ** 2)
+    ok = np.ones(frames.shape, bool)
+    ext = optimal_extract(frames, prof, read_noise=rn, clip=50.0)
+    w1 = _extraction_weights(ext.flux[:1], prof, var_pix, ok[:1])
+    # the last fit used the previous iteration's model variance: ~1e-4 differences
+    np.testing.assert_allclose(np.einsum("kyx,yx->kx", w1, frames[0]), ext.flux[0], rtol=1e-3)
+    w_bar = _extraction_weights(ext.flux, prof, var_pix, ok) / 3
+    predicted = np.einsum("kyx,yx->kx", w_bar ** 2, np.full((n_y, n_x), 4.0))
+    shifts = [optimal_extract(frames + e, prof, read_noise=rn, clip=50.0).flux.mean(axis=0)
+              - ext.flux.mean(axis=0) for e in rng.normal(size=(200, n_y, n_x)) * 2.0]
+    measured = np.var(shifts, axis=0)
+    # 200 draws x 40 values: the mean variance is known to ~2 %; allow 6 %
+    np.testing.assert_allclose(measured.mean(), predicted.mean(), rtol=0.06)
