@@ -79,7 +79,10 @@ def contrast_and_phase(fringe, incoherent, t, pairs):
     # A_k = sum_i t_ki F_i: per (pol, wave) a 24 x 4 least-squares problem
     m = t.transpose(0, 3, 1, 2)                                         # (pol, wave, out, tel)
     rhs = a.transpose(0, 2, 1)[..., None]                               # (pol, wave, out, 1)
-    flux = (np.linalg.pinv(m) @ rhs)[..., 0].transpose(0, 2, 1)         # (pol, tel, wave)
+    bad = ~(np.isfinite(m).all(axis=(-1, -2)) & np.isfinite(rhs).all(axis=(-1, -2)))
+    flux = (np.linalg.pinv(np.where(bad[..., None, None], 0.0, m))
+            @ np.where(bad[..., None, None], 0.0, rhs))[..., 0]
+    flux = np.where(bad[..., None], np.nan, flux).transpose(0, 2, 1)   # (pol, tel, wave)
     n_out = pairs.shape[0]
     o = np.arange(n_out)
     ti, tj = t[:, o, pairs[:, 0]], t[:, o, pairs[:, 1]]                 # (pol, out, wave)

@@ -111,3 +111,14 @@ def test_residuals_and_phase_qc(rng):
     swapped = th.copy()
     swapped[:, [1, 2]] = th[:, [2, 1]]
     assert np.all(np.abs(phase_set_qc(swapped, NOMINAL)[0][:, 0]) > 6)   # order broken: 2 pi
+
+
+def test_nan_propagates_to_its_wavelength_only(rng):
+    t, c, th = _true_combiner(rng)
+    t[0, 3, 0, 2] = np.nan                       # one transmission unknown at wave 2
+    dc = np.ones((1, 24, 5))
+    c_est, th_est, flux = contrast_and_phase(np.ones((1, 24, 5), complex), dc, t, PAIRS)
+    assert np.isnan(flux[0, :, 2]).all() and np.isfinite(flux[0, :, [0, 1, 3, 4]]).all()
+    p2vm = weighted_pinv(build_v2pm(t, c, th, PAIRS))
+    assert np.isnan(p2vm[0, 2]).all() and np.isfinite(p2vm[0, [0, 1, 3, 4]]).all()
+    assert np.isnan(condition_number(build_v2pm(t, c, th, PAIRS))[0, 2])
