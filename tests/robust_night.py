@@ -79,10 +79,12 @@ def same_array(a, b) -> bool:
     return bool(np.array_equal(a, b))
 
 
-def differing_products(work_a: Path, work_b: Path) -> list:
+def differing_products(work_a: Path, work_b: Path, *, skip=()) -> list:
     """Products whose sets of files or datasets differ between two work directories
-    (the report's HTML is not compared: it holds the creation time)."""
-    fa, fb = product_files(work_a), product_files(work_b)
+    (stages in ``skip`` left out; the report's HTML is not compared: it holds the
+    creation time)."""
+    fa, fb = ({k: v for k, v in product_files(w).items() if k[0] not in skip}
+              for w in (work_a, work_b))
     diff = sorted(set(fa) ^ set(fb))
     for name in sorted(set(fa) & set(fb)):
         da, db = read_datasets(fa[name]), read_datasets(fb[name])

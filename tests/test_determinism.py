@@ -6,6 +6,8 @@ seeded from the unit it belongs to)."""
 
 import pytest
 
+import pipeline.engine as engine
+import recipes
 from pipeline.engine import reduce
 from robust_night import (astrometry_rows, clean_work, differing_products, night_path,
                           product_files, same_array)
@@ -13,13 +15,18 @@ from robust_night import (astrometry_rows, clean_work, differing_products, night
 pytestmark = pytest.mark.slow
 
 
-def test_processes_scheduler_equals_threads(tmp_path_factory, tiny_night, tmp_path):
+def test_processes_scheduler_equals_threads(tmp_path_factory, tiny_night, tmp_path,
+                                           monkeypatch):
     clean = clean_work(tmp_path_factory, tiny_night)            # threads, first run
+    # The report (pictures of the products compared here) is left out to save time.
+    monkeypatch.setattr(engine, "_stages",
+                        lambda: [s for s in recipes.STAGES if s.name != "report"])
     night = night_path(tmp_path_factory, tiny_night)
     summary = reduce(night, tmp_path / "work", scheduler="processes", workers=2,
                      progress=False)
     assert summary.exit_code == 0 and not summary.reused, summary.text()
-    assert set(product_files(tmp_path / "work")) == set(product_files(clean))
-    assert differing_products(tmp_path / "work", clean) == []
+    assert set(product_files(tmp_path / "work")) == {
+        name for name in product_files(clean) if name[0] != "report"}
+    assert differing_products(tmp_path / "work", clean, skip=("report",)) == []
     table = astrometry_rows(tmp_path / "work")
     assert len(table) == 1 and same_array(table, astrometry_rows(clean))

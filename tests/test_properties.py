@@ -18,7 +18,7 @@ from pipeline.numerics.averaging import BASELINES, TRIANGLES, average_exposure
 from pipeline.rawio import RawExposure
 from rawfactory import write_raw
 
-SETTINGS = settings(max_examples=30, deadline=None, derandomize=True,
+SETTINGS = settings(max_examples=25, deadline=None, derandomize=True,
                     suppress_health_check=[HealthCheck.function_scoped_fixture])
 
 # Header keywords of docs/raw_format.md that a science exposure carries.
@@ -73,7 +73,7 @@ FILES = st.lists(st.tuples(st.sampled_from(KINDS), st.sampled_from([0.02, 0.1, 1
                            st.floats(0.0, 0.5)), min_size=1, max_size=7)
 
 
-@settings(max_examples=12, deadline=None, derandomize=True,
+@settings(max_examples=8, deadline=None, derandomize=True,
           suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(files=FILES, duplicate=st.booleans())
 def test_inventory_associations(scratch, files, duplicate):
