@@ -343,12 +343,19 @@ def kernel_benchmarks(*, ft_frames: int = 4096, sc_frames: int = 8, setup: str =
 
 # -- the driver ------------------------------------------------------------------------
 
-def _single_thread_env() -> dict:
+def _single_thread_env(n: int | str = 1) -> dict:
     env = dict(os.environ)
     for k in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
               "NUMEXPR_NUM_THREADS"):
-        env[k] = "1"
+        env[k] = str(n)
     return env
+
+
+def _reduce_env():
+    """Environment of the reduce children: BLAS threads per process from
+    ``TWINFIELD_BENCH_BLAS_THREADS`` when set (else inherited)."""
+    n = os.environ.get("TWINFIELD_BENCH_BLAS_THREADS")
+    return _single_thread_env(n) if n else None
 
 
 def _fresh(path: Path) -> Path:
@@ -407,6 +414,9 @@ def main(argv=None) -> int:
     json_path = out / "bench.json"
     results = {"scenario": scenario, "seed": seed, "cores": os.cpu_count(),
                "started_utc": _utc()}
+    if set(parts) - {"kernels"}:
+        results["reduce_blas_threads"] = os.environ.get("TWINFIELD_BENCH_BLAS_THREADS",
+                                                        "inherited")
 
     def save():
         """Merge this run's figures into bench.json (figures of another scenario or
@@ -447,7 +457,7 @@ def main(argv=None) -> int:
     if "reduce" in parts or "rerun" in parts:
         print(f"full reduce (threads, {os.cpu_count()} cores) ...")
         res = _check(run_child({"what": "reduce", "night": str(night), "work": str(_fresh(full)),
-                                "config": [str(config)]}), "reduce")
+                                "config": [str(config)]}, env=_reduce_env()), "reduce")
         results.update(reduce_s=res["seconds"], reduce_wall_s=res["wall_s"],
                        reduce_cpu_s=res["cpu_s"],
                        reduce_failed=res["n_failed"],
@@ -463,7 +473,7 @@ def main(argv=None) -> int:
     if "rerun" in parts:
         print("rerun of binary after a parameter change ...")
         config.write_text("[binary]\nambiguous_dchi2 = 12.0\n")
-        res = _check(run_child({"what": "rerun", "work": str(full), "stage": "binary"}),
+        res = _check(run_child({"what": "rerun", "work": str(full), "stage": "binary"}, env=_reduce_env()),
                      "rerun")
         results.update(rerun_s=res["seconds"], rerun_computed=res["computed"],
                        rerun_cpu_s=res["cpu_s"],
@@ -478,7 +488,8 @@ def main(argv=None) -> int:
                               dashboard_address=None) as cluster:
                 res = _check(run_child({"what": "reduce", "night": str(night),
                                         "work": str(_fresh(work_root / f"dist{n}")),
-                                        "scheduler": cluster.scheduler_address}),
+                                        "scheduler": cluster.scheduler_address},
+                                       env=_reduce_env()),
                              f"distributed reduce ({n} workers)")
             times[n] = res["seconds"]
             results[f"dist_{n}_client_cpu_s"] = res["cpu_s"]
@@ -495,7 +506,8 @@ def main(argv=None) -> int:
         results["night_bytes_scaled"] = night_bytes(big)
         print(f"reduce of the {scale}x night (threads) ...")
         res = _check(run_child({"what": "reduce", "night": str(big),
-                                "work": str(_fresh(work_root / f"x{scale}"))}), "scaled reduce")
+                                "work": str(_fresh(work_root / f"x{scale}"))}, env=_reduce_env()),
+                     "scaled reduce")
         results.update(peak_rss_4x_gib=max(res["tree_peak_rss_bytes"],
                                            res["self_max_rss_bytes"]) / GIB,
                        reduce_4x_s=res["seconds"], memory_scale=scale)
