@@ -76,9 +76,20 @@ class Plan:
     units: dict = field(default_factory=dict)     # (stage, label) -> PlannedUnit, graph order
     stage_errors: dict = field(default_factory=dict)  # stage -> why its plan() failed
 
+    def is_current(self, pu: PlannedUnit) -> bool:
+        """Complete, and (for a ``partial`` stage) made with every input that now exists."""
+        if not is_complete(pu.path):
+            return False
+        if not _stage_of(self, pu.stage).partial:
+            return True
+        with ProductView(pu.path) as view:
+            missing = json.loads(view.attrs.get("missing_inputs", "{}") or "{}")
+        return not any(is_complete(self.units[tuple(ref)].path) for ref in missing.values()
+                       if tuple(ref) in self.units)
+
     def state(self, pu: PlannedUnit) -> str:
         """current | failed | stale | missing."""
-        if is_complete(pu.path):
+        if self.is_current(pu):
             return "current"
         if failure_path(self.workdir, pu.stage, pu.unit.label, pu.key).is_file():
             return "failed"
@@ -208,19 +219,23 @@ def _execute(spec: dict, upstream: dict) -> dict:
     workdir = Path(spec["workdir"])
     t0 = time.perf_counter()
     prov = {"stage": stage_name, "label": unit.label, "key": key}
-    failed_up = [r for r in upstream.values() if r["state"] == "failed"]
+    stage = spec["stage_obj"]
+    failed_roles = {role: r for role, r in upstream.items() if r["state"] == "failed"}
+    failed_up = [] if stage.partial else list(failed_roles.values())
     try:
         if spec["error"]:
             raise _UnitError(spec["error"])
         if failed_up:
             names = ", ".join(dict.fromkeys(f"{r['stage']}/{r['label']}" for r in failed_up))
             raise _UnitError(f"upstream {names} failed ({failed_up[0]['root']})")
-        stage = spec["stage_obj"]
         from .instrument import load_instrument
         from .rawio import RawExposure
         inputs = Inputs(unit=unit, raw=[RawExposure(p) for p in unit.raw],
-                        products={role: ProductView(r["path"]) for role, r in upstream.items()},
-                        instrument=load_instrument(), workdir=workdir)
+                        products={role: ProductView(r["path"]) for role, r in upstream.items()
+                                  if role not in failed_roles},
+                        instrument=load_instrument(), workdir=workdir,
+                        failed={role: f"{r['stage']}/{r['label']}: {r['message']}"
+                                for role, r in failed_roles.items()})
         skipped = ""
         try:
             outputs = stage.run(inputs, spec["params"]) or {}
@@ -235,6 +250,8 @@ def _execute(spec: dict, upstream: dict) -> dict:
             "raw_files": json.dumps(list(unit.raw)),
             "raw_identities": json.dumps(spec["raw_ids"]),
             "input_keys": json.dumps({r: u["key"] for r, u in upstream.items()}),
+            "missing_inputs": json.dumps({r: [u["stage"], u["label"]]
+                                          for r, u in failed_roles.items()}),
             "input_paths": json.dumps({r: u["path"] for r, u in upstream.items()}),
             "code_version": __version__,
             "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
@@ -427,7 +444,7 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
             summary.failed += [(name, "(plan)", msg) for name, msg in plan.stage_errors.items()]
             values, tasks = {}, []
             for uid, pu in plan.units.items():
-                if uid not in forced and pu.error is None and is_complete(pu.path):
+                if uid not in forced and pu.error is None and plan.is_current(pu):
                     values[uid] = {"stage": pu.stage, "label": pu.unit.label, "key": pu.key,
                                    "state": "reused", "path": str(pu.path)}
                     summary.reused.append(uid)

@@ -227,7 +227,8 @@ def _verdict(table) -> tuple[str, str]:
     return text, ("#1a7f37" if bad == 0 and 0.3 < chi < 3 else "#b35900")
 
 
-def build_report(outdir, binaries, *, table=None, qc=None, title="twinfield night report") -> Path:
+def build_report(outdir, binaries, *, table=None, qc=None, title="twinfield night report",
+                 failed=()) -> Path:
     """Write the figures and ``index.html`` into ``outdir``; returns the HTML path.
 
     Parameters
@@ -263,6 +264,9 @@ def build_report(outdir, binaries, *, table=None, qc=None, title="twinfield nigh
     meta = "" if table is None else html.escape(
         f"code {table.meta.get('CODEVER', '?')}, configuration {table.meta.get('CFGHASH', '?')}. "
         f"Flags: {table.meta.get('FLAGS', '')}. {table.meta.get('CONVENT', '')}")
+    if failed:      # exposures (or QC inputs) whose reduction failed upstream: said, not hidden
+        rows += "".join(f'<tr style="background:#f4b6b2"><td colspan="{len(cols)}">NOT REDUCED '
+                        f"{html.escape(str(m))}</td></tr>\n" for m in failed)
     body = "\n".join(f'<h2>{html.escape(t)}</h2>\n'
                      f'<img src="{html.escape(f)}" alt="{html.escape(t)}">'
                      for t, f in figs)

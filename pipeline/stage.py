@@ -84,6 +84,9 @@ class Inputs:
     products: Mapping[str, Any]
     instrument: Any
     workdir: Any = None
+    failed: Mapping[str, str] = field(default_factory=dict)
+    """Only for stages declared ``partial``: role -> message of each upstream unit that
+    failed (absent from ``products``)."""
 
 
 @dataclass(frozen=True)
@@ -103,6 +106,11 @@ class Stage:
     run : callable(Inputs, params) -> dict[str, Array | ndarray | scalar | str]
         Arrays become datasets; scalars and strings become attributes.
     doc : str, one line for ``twinfield plan`` and the docs
+    partial : bool
+        Night-level summaries (tables, report) set this: the unit runs with the upstream
+        products that exist, and the failed ones are listed in ``Inputs.failed`` instead
+        of failing the unit. Such a product is stale again as soon as a missing input
+        appears.
     """
     name: str
     version: str
@@ -112,3 +120,4 @@ class Stage:
     plan: Callable
     run: Callable
     doc: str = ""
+    partial: bool = False

@@ -46,10 +46,11 @@ def run(inputs, params: ReportParams) -> dict:
                              code_version=__version__,
                              config=config_hash(v.key for v in binaries), flag_doc=FLAG_DOC)
     path = build_report(inputs.workdir / "report", binaries, table=table, qc=qc,
-                        title=params.title)
-    return {"index_html": str(path), "n_exposures": len(binaries)}
+                        title=params.title, failed=sorted(inputs.failed.values()))
+    return {"index_html": str(path), "n_exposures": len(binaries),
+            "failed_inputs": "\n".join(sorted(inputs.failed.values()))}
 
 
 STAGE = Stage(name="report", version="1", params=ReportParams, after=("binary",),
-              granularity="night", plan=plan, run=run,
+              granularity="night", plan=plan, run=run, partial=True,
               doc="QC report: uv coverage, V2/closure phases with model, chi2 maps, astrometry")

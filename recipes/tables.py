@@ -27,17 +27,19 @@ def plan(inventory: Inventory, params: TablesParams, upstream) -> list[Unit]:
 
 
 def run(inputs, params: TablesParams) -> dict:
-    views = [inputs.products[f"exp{k}"] for k in range(len(inputs.products))]
+    views = list(inputs.products.values())     # failed fits are absent (partial stage)
     if not views:
         raise NothingToDo("no science exposure was fitted")
     table = astrometry_table([row_from_binary(v.attrs) for v in views],
                              code_version=__version__, config=config_hash(v.key for v in views),
                              flag_doc=FLAG_DOC)
+    table.meta["NOTREDUC"] = "; ".join(sorted(inputs.failed.values()))  # failed upstream
     files = write_astrometry(table, inputs.workdir) if params.write_files else {}
     return {"astrometry": Array(table.as_array(), ("row",), "", "the astrometry table"),
-            "files": files, "n_rows": len(table), "config_hash": table.meta["CFGHASH"]}
+            "files": files, "n_rows": len(table), "config_hash": table.meta["CFGHASH"],
+            "failed_inputs": table.meta["NOTREDUC"]}
 
 
 STAGE = Stage(name="tables", version="1", params=TablesParams, after=("binary",),
-              granularity="night", plan=plan, run=run,
+              granularity="night", plan=plan, run=run, partial=True,
               doc="per-night astrometry tables (ECSV, FITS, CSV) for orbit fitters")

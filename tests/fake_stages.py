@@ -58,3 +58,24 @@ def _slow_run(inputs, params):
 
 
 SLOW = Stage("slow", "1", SlowParams, ("dark",), "night", _slow_plan, _slow_run)
+
+
+@dataclass(frozen=True)
+class SummaryParams:
+    pass
+
+
+def _summary_plan(inventory, params, upstream):
+    return [Unit(label="night", needs={f"c{i}": ("consumer", u.label)
+                                       for i, u in enumerate(upstream.get("consumer", []))})]
+
+
+def _summary_run(inputs, params):
+    levels = [float(v["level"][0]) for v in inputs.products.values()]
+    return {"levels": Array(np.array(levels), ("unit",), "adu"),
+            "failed": "\n".join(sorted(inputs.failed.values()))}
+
+
+SUMMARY = Stage("summary", "1", SummaryParams, ("consumer",), "night", _summary_plan,
+                _summary_run, partial=True)
+"""A night-level summary that runs with whatever upstream units succeeded."""
