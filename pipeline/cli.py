@@ -79,8 +79,16 @@ def _cmd_plan(args) -> int:
     return EXIT_MISSING if plan.inventory.problems() else EXIT_OK
 
 
-def _report(summary) -> int:
+def _report(summary, workdir) -> int:
     print(summary.text())
+    work = Path(workdir)
+    for what, path in (("astrometry table", work / "astrometry.ecsv"),
+                       ("  (also FITS)", work / "astrometry.fits"),
+                       ("  (also CSV)", work / "astrometry.csv"),
+                       ("QC report", work / "report" / "index.html"),
+                       ("OIFITS files", work / "oifits")):
+        if path.exists():
+            print(f"{what + ':':<18s} {path.resolve()}")
     return summary.exit_code
 
 
@@ -88,13 +96,13 @@ def _cmd_reduce(args) -> int:
     from .engine import reduce
     return _report(reduce(args.night_dir, args.workdir, config=args.config,
                           scheduler=args.scheduler, workers=args.workers,
-                          force=tuple(args.force), debug=args.debug))
+                          force=tuple(args.force), debug=args.debug), args.workdir)
 
 
 def _cmd_rerun(args) -> int:
     from .engine import rerun
     return _report(rerun(args.workdir, args.stage, scheduler=args.scheduler,
-                         workers=args.workers, debug=args.debug))
+                         workers=args.workers, debug=args.debug), args.workdir)
 
 
 def _cmd_status(args) -> int:
