@@ -94,6 +94,6 @@ def differing_products(work_a: Path, work_b: Path, *, skip=()) -> list:
 
 
 def astrometry_rows(work: Path) -> np.ndarray:
-    """The astrometry table dataset of the ``tables`` product."""
-    (path,) = Path(work).glob("tables/night.*.h5")
+    """The astrometry table dataset of the newest ``tables`` product."""
+    path = max(Path(work).glob("tables/night.*.h5"), key=lambda p: p.stat().st_mtime_ns)
     return read_datasets(path)["astrometry"]
