@@ -506,3 +506,22 @@ def test_residual_path_statistics(rng):
     rho = injection(rng, 400_000, dt, dict(mean=0.45, log_sigma=0.25, corr_ms=40.0))
     # lognormal with the -s^2/2 shift keeps the mean; 100 s / 40 ms: ~2 % precision
     np.testing.assert_allclose(rho.mean(0), 0.45, rtol=0.05)
+
+
+def test_truth_exposure_list(tiny_night):
+    """The flat `exposures` list of truth.json (docs/truth.md) agrees with `files`."""
+    import json
+    from astropy.time import Time
+    truth = json.loads((tiny_night / "truth.json").read_text())
+    exps = truth["exposures"]
+    assert [e["file"] for e in exps] == sorted(truth["files"], key=lambda n: Time(
+        truth["files"][n]["date_obs"]).mjd)
+    for e in exps:
+        f = truth["files"][e["file"]]
+        assert e["kind"] == f["kind"]
+        assert abs(e["mjd"] - Time(f["date_obs"]).mjd) < 1e-9
+        if e["kind"] == "science":
+            assert (e["companion_dra_mas"], e["companion_ddec_mas"]) == (
+                f["companion_dra_mas"], f["companion_ddec_mas"])
+            assert [e["primary_dra_mas"], e["primary_ddec_mas"]] == f["primary_offset_mas"]
+            assert e["flux_ratio"] == f["flux_ratio"]

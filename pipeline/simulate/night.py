@@ -107,6 +107,23 @@ def _target_truth(w, tg, t_start, dit, events):
     return out
 
 
+def _exposure_list(files: dict) -> list:
+    """One flat record per file, in time order: the summary orbit-fit checks read."""
+    from astropy.time import Time
+    out = []
+    for name, f in files.items():
+        rec = {"file": name, "kind": f["kind"], "mjd": float(Time(f["date_obs"]).mjd)}
+        if "primary_offset_mas" in f:
+            rec.update({"object": f["object"], "companion_dra_mas": f["companion_dra_mas"],
+                        "companion_ddec_mas": f["companion_ddec_mas"],
+                        "flux_ratio": f["flux_ratio"],
+                        "primary_dra_mas": f["primary_offset_mas"][0],
+                        "primary_ddec_mas": f["primary_offset_mas"][1],
+                        "diameter_mas": f["diameter_mas"]})
+        out.append(rec)
+    return sorted(out, key=lambda r: r["mjd"])
+
+
 def _instrument_truth(w: _World) -> dict:
     out = {"channels": {}}
     for (setup, polmode), ch in list(w.channels.items()) + [(("ft", ""), w.ft)]:
@@ -161,7 +178,8 @@ def simulate_night(night_dir, *, scenario: str | os.PathLike = "tiny", seed: int
              "start_utc": sc.start_utc,
              "photometry": {"vega_k_flambda_w_m2_um": 4.5e-10, "note": "zero point from memory; "
                             "throughput an assumption", **sc.photometry},
-             "instrument": _instrument_truth(world), "files": files}
+             "instrument": _instrument_truth(world), "files": files,
+             "exposures": _exposure_list(files)}
     tmp = night / "truth.json.part"
     tmp.write_text(json.dumps(truth, indent=1))
     os.replace(tmp, night / "truth.json")
