@@ -44,7 +44,7 @@ def test_distributed_scheduler_equals_threads(tmp_path_factory, tiny_night, tmp_
     monkeypatch.setattr(engine, "_stages",
                         lambda: [s for s in recipes.STAGES if s.name != "report"])
     with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
-                                  dashboard_address=None) as cluster:
+                                  dashboard_address=":0") as cluster:
         summary = reduce(night, work, scheduler=cluster.scheduler_address, force=("average",),
                          progress=False)
     assert summary.exit_code == 0, summary.text()
