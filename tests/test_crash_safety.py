@@ -4,6 +4,7 @@ random moments, then allowed to finish, gives exactly the clean run's products a
 astrometry table; after every kill, no product the engine would trust fails to open."""
 
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -35,6 +36,13 @@ def _wait_for(path, proc, timeout=120.0):
     return True
 
 
+def _units_done(log, offset):
+    """Units this run has logged as computed (the log is appended to by every run)."""
+    with open(log, "rb") as fh:
+        fh.seek(offset)
+        return len(re.findall(rb" INFO computed ", fh.read()))
+
+
 def _nothing_untrustworthy(work):
     """Every product file under its final name is complete and readable, and every
     product ``status`` calls current opens with all its datasets."""
@@ -55,13 +63,19 @@ def test_killed_reductions_then_finished_equal_a_clean_run(tmp_path_factory, tin
     while kills < N_KILLS and attempts < 2 * N_KILLS:
         attempts += 1
         work.mkdir(exist_ok=True)
+        log = work / engine.LOG_FILE
+        offset = log.stat().st_size if log.exists() else 0
         proc = subprocess.Popen(_reduce_cmd(night, work), stdout=subprocess.DEVNULL,
                                 stderr=subprocess.DEVNULL)
         try:
-            # The lock appears once the command has started; kill 0.5-6 s later (the
-            # tiny night takes tens of seconds, so every kill lands inside some stage).
+            # Kill once this run has finished a random number (1-5) of the night's ~20
+            # units, a random fraction of a second later: the kills spread over the whole
+            # graph, while a product is computed or written.
             assert _wait_for(work / engine.LOCK_FILE, proc), "reduce never took the lock"
-            time.sleep(rng.uniform(0.5, 6.0))
+            target = rng.integers(1, 6)
+            while proc.poll() is None and _units_done(log, offset) < target:
+                time.sleep(0.02)
+            time.sleep(rng.uniform(0.0, 1.0))
             if proc.poll() is None:
                 os.kill(proc.pid, signal.SIGKILL)
                 kills += 1
