@@ -215,11 +215,14 @@ def ft_mean_counts(raw, ft_dark, *, instrument):
 
 # -- wavelengths ----------------------------------------------------------------------------
 
-def _bandwidth_law(bw, bw_err, law, *, max_rel_err=0.02, decay=None, min_decay=0.01):
+def _bandwidth_law(bw, bw_err, law, *, max_rel_err=0.02, decay=None, min_decay=0.01,
+                   nominal_fwhm_px=None):
     """Per-trace LSF FWHM in pixels from the measured bandwidths; traces whose own
     measurement is poorer than ``max_rel_err``, or whose scan covers too little of the
     envelope (``decay``, the fractional envelope drop at the largest OPD fitted, below
-    ``min_decay``), adopt the median of the others."""
+    ``min_decay``), adopt the median of the others. When no trace is measurable (a scan
+    much shorter than the coherence length, as at high resolution) the instrument
+    model's ``nominal_fwhm_px`` is adopted for every trace, if given."""
     disp = np.abs(np.gradient(law, axis=1))                        # m / px
     fw = bw / disp
     ok = np.isfinite(fw) & np.isfinite(bw_err) & (bw_err > 0)
@@ -231,15 +234,18 @@ def _bandwidth_law(bw, bw_err, law, *, max_rel_err=0.02, decay=None, min_decay=0
     rel = 1 / np.sqrt(np.maximum(wsum, 1e-300)) / np.where(np.isfinite(mean), mean, 1.0)
     measured = np.isfinite(mean) & (rel < max_rel_err)
     if not measured.any():
-        raise ValueError("no trace has a measurable fringe envelope: the scan is too short "
-                         "for the bandwidth")
+        if nominal_fwhm_px is None:
+            raise ValueError("no trace has a measurable fringe envelope: the scan is too "
+                             "short for the bandwidth")
+        fwhm_px = np.full(mean.shape, float(nominal_fwhm_px))
+        return fwhm_px[:, None] * disp, fwhm_px, measured
     fwhm_px = np.where(measured, mean, np.median(mean[measured]))
     return fwhm_px[:, None] * disp, fwhm_px, measured
 
 
 def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trace", "x"),
                      min_snr=5.0, max_bw_rel_err=0.02, max_opd=None,
-                     min_envelope_decay=0.0, trim_grid=True) -> dict:
+                     min_envelope_decay=0.0, trim_grid=True, nominal_fwhm_px=None) -> dict:
     """Wavelength products of a channel from scan intensities (frame, trace, x);
     ``max_opd`` (m, broadcastable to (trace, x)) limits the fit to the central packet.
     ``trim_grid`` False keeps one grid point per pixel (a channel calibrated per pixel,
@@ -258,7 +264,8 @@ def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trac
     decay = 1 - np.exp(-k4 * (fit.bandwidth / law ** 2 * o.max(axis=0)) ** 2)
     bw, fwhm_px, measured = _bandwidth_law(np.where(dead, np.nan, fit.bandwidth),
                                            fit.bandwidth_err, law, max_rel_err=max_bw_rel_err,
-                                           decay=decay, min_decay=min_envelope_decay)
+                                           decay=decay, min_decay=min_envelope_decay,
+                                           nominal_fwhm_px=nominal_fwhm_px)
     grid = common_grid(law, extrapolate_px=0.5 if trim_grid else np.inf)
     bw_grid = np.median(np.stack([np.interp(grid, law[k], bw[k]) for k in range(law.shape[0])]),
                         axis=0)
@@ -278,7 +285,9 @@ def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trac
             "lsf_fwhm_px": Array(fwhm_px, (axes[0],), "px", "line-spread FWHM per trace"),
             "bandwidth_is_measured": Array(measured, (axes[0],), "",
                                            "False: median of the other traces adopted"),
-            "x_ref": x_ref, "x_scale": x_scale, "n_law_rejected": int((~used & ~dead).sum())}
+            "x_ref": x_ref, "x_scale": x_scale, "n_law_rejected": int((~used & ~dead).sum()),
+            "bandwidth_source": ("scan envelope" if measured.any() else
+                                 "instrument model line-spread (scan too short to measure)")}
 
 
 def wavecal_science(raw, dark, flat, *, instrument, setup_name, polmode, window=2.0,
@@ -295,7 +304,8 @@ def wavecal_science(raw, dark, flat, *, instrument, setup_name, polmode, window=
     guess = np.broadcast_to(setup.nominal_wavelength_m(), flux.shape[1:])
     bw = setup.channel_fwhm_px * setup.dispersion_m_per_px
     return wavecal_products(flux, opd[:, base, None], span[:, base, None], guess,
-                            max_opd=window * guess ** 2 / bw, **kw)
+                            max_opd=window * guess ** 2 / bw,
+                            nominal_fwhm_px=setup.channel_fwhm_px, **kw)
 
 
 def wavecal_ft(raw, ft_dark, *, instrument, window=0.6, **kw) -> dict:

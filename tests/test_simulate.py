@@ -293,7 +293,7 @@ def bright_night(tmp_path_factory):
     text = text.replace("scan_nframe = 250", "scan_nframe = 10")
     text = text.replace("kmag = 7.0\nprimary", "kmag = 3.5\nprimary")
     text = text.replace("ft_kmag = 7.5", "ft_kmag = 3.0")
-    old = 'target = "Kessa-B1"\nsetup = "low"\ndit = 0.1\nnframe = 4'
+    old = 'target = "Kessa-B1"\nsetup = "low"\ndit = 0.1\nnframe = 8'
     assert text.count(old) == 2                       # sky, then science
     head, _, tail = text.rpartition(old)
     text = head + 'target = "Kessa-B1"\nsetup = "low"\ndit = 0.5\nnframe = 6' + tail
