@@ -7,6 +7,7 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass
 
+from pipeline.errors import NothingToDo
 from pipeline.inventory import Inventory
 from pipeline.observables import array_for, oifits_observations
 from pipeline.oifits import write_oifits
@@ -27,7 +28,9 @@ def plan(inventory: Inventory, params: MergeParams, upstream) -> list[Unit]:
 
 
 def run(inputs, params: MergeParams) -> dict:
-    views = [inputs.products[f"exp{k}"] for k in range(len(inputs.products))]
+    views = list(inputs.products.values())     # failed exposures are absent (partial stage)
+    if not views:
+        raise NothingToDo("no science exposure was calibrated")
     by_target = {}
     for v in views:
         by_target.setdefault(str(v.attrs["object"]), []).append(v)
@@ -38,9 +41,10 @@ def run(inputs, params: MergeParams) -> dict:
         stem = re.sub(r"[^A-Za-z0-9._+-]+", "_", target).strip("_") or "target"
         written.append(str(write_oifits(inputs.workdir / "oifits" / f"{stem}_{date}.fits", obs,
                                         array_for(group[0], inputs.instrument))))
-    return {"files": written, "n_exposures": len(views)}
+    return {"files": written, "n_exposures": len(views),
+            "failed_inputs": "\n".join(sorted(inputs.failed.values()))}
 
 
 STAGE = Stage(name="merge", version="1", params=MergeParams, after=("calibrate",),
-              granularity="night", plan=plan, run=run,
+              granularity="night", plan=plan, run=run, partial=True,
               doc="one merged OIFITS v2 file per target and night")
