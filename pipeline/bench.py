@@ -49,6 +49,7 @@ __all__ = ["scaled_scenario_text", "night_bytes", "io_floor", "tree_rss_bytes",
            "run_child", "kernel_benchmarks", "ensure_night", "main", "PARTS"]
 
 PARTS = ("kernels", "reduce", "rerun", "scaling", "memory")
+STATE_NAME = "twinfield.json"          # the engine's state file in a work directory
 GIB = 2.0 ** 30
 TARGETS = {"io_floor_ratio": ("<=", 3.0), "peak_rss_gib": ("<", 2.0),
            "memory_ratio": ("<=", 1.25), "scaling_2v1": (">=", 1.6),
@@ -180,7 +181,9 @@ def _child(request: dict) -> dict:
     ru = me.ru_maxrss * 1024                                                # KiB on Linux
     return {"seconds": seconds, "cpu_s": me.ru_utime + me.ru_stime, "self_max_rss_bytes": ru, "computed": len(summary.computed),
             "reused": len(summary.reused), "failed": [list(f) for f in summary.failed][:20],
-            "n_failed": len(summary.failed)}
+            "n_failed": len(summary.failed),
+            "computed_stages": {st: sum(1 for s, _ in summary.computed if s == st)
+                                for st in dict.fromkeys(s for s, _ in summary.computed)}}
 
 
 # -- the I/O floor -------------------------------------------------------------------
@@ -452,9 +455,12 @@ def main(argv=None) -> int:
     results["night_bytes"] = night_bytes(night)
     config = work_root / "bench-params.toml"
     work_root.mkdir(parents=True, exist_ok=True)
-    config.write_text("[binary]\nambiguous_dchi2 = 10.0\n")
     full = work_root / "threads"
-    if "reduce" in parts or "rerun" in parts:
+    if not config.is_file() or "reduce" in parts:
+        config.write_text("[binary]\nambiguous_dchi2 = 10.0\n")
+    previous = save()
+    if "reduce" in parts or ("rerun" in parts and not ((full / STATE_NAME).is_file()
+                                                       and previous.get("reduce_s"))):
         print(f"full reduce (threads, {os.cpu_count()} cores) ...")
         res = _check(run_child({"what": "reduce", "night": str(night), "work": str(_fresh(full)),
                                 "config": [str(config)]}, env=_reduce_env()), "reduce")
@@ -472,11 +478,12 @@ def main(argv=None) -> int:
         save()
     if "rerun" in parts:
         print("rerun of binary after a parameter change ...")
-        config.write_text("[binary]\nambiguous_dchi2 = 12.0\n")
+        old_value = re.search(r"ambiguous_dchi2 = ([\d.]+)", config.read_text())
+        config.write_text(f"[binary]\nambiguous_dchi2 = {float(old_value.group(1)) + 2.0}\n")
         res = _check(run_child({"what": "rerun", "work": str(full), "stage": "binary"}, env=_reduce_env()),
                      "rerun")
         results.update(rerun_s=res["seconds"], rerun_computed=res["computed"],
-                       rerun_cpu_s=res["cpu_s"],
+                       rerun_cpu_s=res["cpu_s"], rerun_stages=res["computed_stages"],
                        rerun_ratio=res["seconds"] / save()["reduce_s"])
         save()
     if "scaling" in parts:
