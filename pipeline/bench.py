@@ -179,8 +179,8 @@ def _child(request: dict) -> dict:
     seconds = time.perf_counter() - t0
     me = resource.getrusage(resource.RUSAGE_SELF)
     ru = me.ru_maxrss * 1024                                                # KiB on Linux
-    return {"seconds": seconds, "cpu_s": me.ru_utime + me.ru_stime, "self_max_rss_bytes": ru, "computed": len(summary.computed),
-            "reused": len(summary.reused), "failed": [list(f) for f in summary.failed][:20],
+    return {"seconds": seconds, "cpu_s": me.ru_utime + me.ru_stime, "self_max_rss_bytes": ru,
+            "computed": len(summary.computed), "reused": len(summary.reused), "failed": [list(f) for f in summary.failed][:20],
             "n_failed": len(summary.failed),
             "computed_stages": {st: sum(1 for s, _ in summary.computed if s == st)
                                 for st in dict.fromkeys(s for s, _ in summary.computed)}}
@@ -480,8 +480,8 @@ def main(argv=None) -> int:
         print("rerun of binary after a parameter change ...")
         old_value = re.search(r"ambiguous_dchi2 = ([\d.]+)", config.read_text())
         config.write_text(f"[binary]\nambiguous_dchi2 = {float(old_value.group(1)) + 2.0}\n")
-        res = _check(run_child({"what": "rerun", "work": str(full), "stage": "binary"}, env=_reduce_env()),
-                     "rerun")
+        res = _check(run_child({"what": "rerun", "work": str(full), "stage": "binary"},
+                               env=_reduce_env()), "rerun")
         results.update(rerun_s=res["seconds"], rerun_computed=res["computed"],
                        rerun_cpu_s=res["cpu_s"], rerun_stages=res["computed_stages"],
                        rerun_ratio=res["seconds"] / save()["reduce_s"])
