@@ -180,7 +180,8 @@ def _child(request: dict) -> dict:
     me = resource.getrusage(resource.RUSAGE_SELF)
     ru = me.ru_maxrss * 1024                                                # KiB on Linux
     return {"seconds": seconds, "cpu_s": me.ru_utime + me.ru_stime, "self_max_rss_bytes": ru,
-            "computed": len(summary.computed), "reused": len(summary.reused), "failed": [list(f) for f in summary.failed][:20],
+            "computed": len(summary.computed), "reused": len(summary.reused),
+            "failed": [list(f) for f in summary.failed][:20],
             "n_failed": len(summary.failed),
             "computed_stages": {st: sum(1 for s, _ in summary.computed if s == st)
                                 for st in dict.fromkeys(s for s, _ in summary.computed)}}
