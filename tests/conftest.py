@@ -25,3 +25,21 @@ def tiny_night(tmp_path_factory):
     night = tmp_path_factory.mktemp("tiny_night")
     simulate_night(night, scenario="tiny", seed=3)
     return night
+
+
+@pytest.fixture(scope="session")
+def tiny_work(tiny_night, tmp_path_factory):
+    """The tiny night reduced once per session through every stage (shared, read-only:
+    tests that change products copy it first).
+
+    Returns (night, work, summary)."""
+    from pathlib import Path
+
+    import recipes
+    from pipeline.engine import reduce
+    work = tmp_path_factory.mktemp("tiny_work")
+    config = work.parent / "tiny_work_fast.toml"
+    config.write_text("[binary]\nn_boot = 12\n")      # fewer bootstrap refits: speed only
+    summary = reduce(tiny_night, work, stages=list(recipes.STAGES), config=[config],
+                     progress=False)
+    return Path(tiny_night), work, summary

@@ -9,7 +9,6 @@ files are read back by the independent `oifits` package.
 
 import json
 import warnings
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -19,24 +18,10 @@ from pipeline.skymodel import MAS, binary_visibility
 pytestmark = pytest.mark.slow
 
 
-def _stages():
-    import recipes
-    names = [s.name for s in recipes.STAGES]
-    if "reference" not in names or "extract" not in names:
-        pytest.skip("the extract and reference stages are not registered yet")
-    from recipes import average, calibrate, merge
-    return list(recipes.STAGES) + [s.STAGE for s in (average, calibrate, merge)
-                                   if s.STAGE.name not in names]
-
-
 @pytest.fixture(scope="module")
-def reduced(request, tmp_path_factory):
-    from pipeline.engine import reduce
-    stages = _stages()                       # skip before simulating the night
-    tiny_night = request.getfixturevalue("tiny_night")
-    work = tmp_path_factory.mktemp("work_calibrate")
-    summary = reduce(tiny_night, work, stages=stages, progress=False)
-    return Path(tiny_night), work, summary
+def reduced(tiny_work):
+    """The session's shared reduction of the tiny night (tests/conftest.py)."""
+    return tiny_work
 
 
 def _product(work, stage):

@@ -349,18 +349,10 @@ def test_lock_losses_and_jumps_are_rejected(events, instrument):
 
 
 @pytest.fixture(scope="module")
-def reduced(tiny_night, tmp_path_factory):
+def reduced(request):
     """The tiny night through the engine, from raw frames to ``reference``, with the
     pipeline's own darks, flats, wavelength and combiner calibrations."""
-    import recipes
-    from pipeline.engine import reduce
-    names = [s.name for s in recipes.STAGES]
-    if "reference" not in names:
-        pytest.skip("the stages are not registered in recipes.STAGES yet")
-    stages = recipes.STAGES[:names.index("reference") + 1]
-    work = tmp_path_factory.mktemp("work_reference")
-    summary = reduce(tiny_night, work, stages=stages, progress=False)
-    return Path(tiny_night), work, summary
+    return request.getfixturevalue("tiny_work")     # shared (tests/conftest.py)
 
 
 def test_engine_calibrator_point_like(reduced, instrument):

@@ -170,27 +170,9 @@ def test_report_html_and_pngs(night, instrument):
         assert img.ndim == 3 and img.shape[0] > 100 and img.shape[1] > 100
 
 
-def _chain():
-    import recipes
-    names = [s.name for s in recipes.STAGES]
-    if "reference" not in names:
-        pytest.skip("the stages up to reference are not registered yet")
-    from recipes import average, calibrate
-    extra = [s.STAGE for s in (average, calibrate, binary, tables, report)
-             if s.STAGE.name not in names]
-    return list(recipes.STAGES) + extra
-
-
 @pytest.fixture(scope="module")
-def tiny_reduced(request, tmp_path_factory):
-    from pathlib import Path
-    from pipeline.engine import reduce
-    stages = _chain()
-    night = Path(request.getfixturevalue("tiny_night"))
-    work = tmp_path_factory.mktemp("work_binary")
-    config = work.parent / "binary_fast.toml"           # fewer bootstrap refits: speed only
-    config.write_text("[binary]\nn_boot = 12\n")
-    summary = reduce(night, work, stages=stages, config=[config], progress=False)
+def tiny_reduced(request):
+    night, work, summary = request.getfixturevalue("tiny_work")   # shared (conftest.py)
     truth = json.loads((night / "truth.json").read_text())
     fits = [ProductView(p).attrs for p in sorted((work / "binary").glob("*.h5"))]
     return summary, work, [(a, truth["files"][a["exposure"]]) for a in fits]
