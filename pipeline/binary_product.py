@@ -82,7 +82,13 @@ def binary_product(view, instrument, *, exposure: str, search_radius_mas: float 
 
     ``pointing_sigma_mas``: uncertainty of the pair's place in the fibre without and with
     calibrated referenced phases (see ``fit_binary``)."""
-    obs = observables_from_product(view, use_phases=use_phases, n_draw=n_boot, seed=seed)
+    # Referenced phases give the primary's offset only when their zero-point was solved
+    # with the calibrators' own offsets; an interpolated zero-point still contains those
+    # offsets (unknown, ~mas), so the phase reference is not calibrated: V2 and closure
+    # phases only, primary offset NaN.
+    zp_fitted = str(view.attrs.get("phase_zero_point", "fit")) == "fit"
+    obs = observables_from_product(view, use_phases=use_phases and zp_fitted, n_draw=n_boot,
+                                   seed=seed)
     fibre = float(instrument.fibre_fwhm_mas_at_2p2um)
     radius = fibre if search_radius_mas is None else float(search_radius_mas)
     try:
@@ -100,6 +106,11 @@ def binary_product(view, instrument, *, exposure: str, search_radius_mas: float 
         fibre_fwhm_mas=fibre)
     a = view.attrs
     out = {k: v for k, v in to_jsonable(res).items() if k != "params_json"}
+    zp_err = float(view.attrs.get("zero_point_astrometric_err_mas", 0.0))
+    if obs.has_phase and np.isfinite(zp_err):       # the zero-point's own astrometric error
+        out["primary_dra_err"] = float(np.hypot(res.primary_dra_err, zp_err))
+        out["primary_ddec_err"] = float(np.hypot(res.primary_ddec_err, zp_err))
+    out["primary_zero_point_err"] = zp_err
     out.update(lmfit_params=res.params_json, flag_doc=FLAG_DOC, exposure=exposure,
                target=str(a.get("object", "")), mjd=float(a.get("mjd", np.nan)),
                setup=str(a.get("setup", "")), polmode=str(a.get("polmode", "")),

@@ -204,18 +204,23 @@ def calibrate_product(science, calibrators, *, science_path: str = "", method: s
         t_cal, np.array(zp_t3), np.array([c["t3phi_err"] for c in cals]), t, **kw))
     lo, hi, a = (x[0] for x in interpolation_weights(t_cal, t, **kw))
     zp_cov = (1 - a) ** 2 * cals[lo]["visphi_cov"] + a ** 2 * cals[hi]["visphi_cov"]
-    offsets_mas, fitted = {}, False
+    offsets_mas, fitted, zp_astro_err_mas = {}, False, float("nan")
     if phase_zero_point == "fit" and len(cals) >= 2:
         names = sorted({str(c.attrs.get("object", "")) for c in cals})
         star = np.array([names.index(str(c.attrs.get("object", ""))) for c in cals])
         uv = np.array([c["uvw"] for c in cals])
-        zp, zpe, off, _, fitted = fit_phase_zero_point(
+        zp, zpe, off, off_cov, fitted = fit_phase_zero_point(
             np.array(zp_vis), np.array([c["visphi_err"] for c in cals]), uv[..., 0],
             uv[..., 1], wave, star)
         if fitted:
             ZV, ZVe = zp, zpe
             zp_cov = _outer(zpe) * np.eye(wave.size)
             offsets_mas = {n: (off[:, s] / MAS).tolist() for s, n in enumerate(names)}
+            # The zero-point is tied to the calibrators' fitted positions: their error moves
+            # every referenced phase coherently (all wavelengths), i.e. it is an error of
+            # the science pointing. Largest per-axis 1-sigma over the stars, mas.
+            zp_astro_err_mas = float(np.sqrt(np.max(np.diagonal(off_cov, axis1=1, axis2=2)))
+                                     / MAS)
 
     v2, v2e = transfer_function(science["vis2"], science["vis2_err"], T2, T2e)
     va, vae = transfer_function(science["visamp"], science["visamp_err"], TA, TAe)
@@ -252,6 +257,7 @@ def calibrate_product(science, calibrators, *, science_path: str = "", method: s
                                 for c in cals]),
         calibrator_mjd=json.dumps(t_cal.tolist()), interpolation=method,
         phase_zero_point="fit" if fitted else "interpolate",
+        zero_point_astrometric_err_mas=zp_astro_err_mas,
         calibrator_offsets_mas=json.dumps(offsets_mas))
     for k, v in sa.items():
         if k in ("object", "kind", "setup", "polmode", "ra_deg", "dec_deg", "mjd", "mjd_start",
