@@ -147,17 +147,25 @@ def invert_combiner(intensity, p2vm, *, variance=None,
     if nan_policy == "raise" and not np.isfinite(i).all():
         raise ValueError(f"{int((~np.isfinite(i)).sum())} non-finite intensities; mask them "
                          "upstream or pass nan_policy='propagate'")
-    unknown = np.einsum("pwuo,...pow->...puw", p, i)
+    unknown = _apply(p, i)
     if variance is None:
         var = np.full_like(unknown, np.nan)
     else:
         v = np.asarray(variance, float)
         if v.shape != i.shape:
             raise ValueError(f"variance shape {v.shape} differs from intensity {i.shape}")
-        var = np.einsum("pwuo,...pow->...puw", p ** 2, v)
+        var = _apply(p ** 2, v)
     t, b = N_TELESCOPE, N_BASELINE
     return CoherentFluxes(
         flux=unknown[..., :t, :],
         flux_var=var[..., :t, :],
         coherent=unknown[..., t:t + b, :] + 1j * unknown[..., t + b:, :],
         coherent_var=0.5 * (var[..., t:t + b, :] + var[..., t + b:, :]))
+
+
+def _apply(matrix, x):
+    """matrix (pol, wave, u, o) applied to x (..., pol, o, wave) -> (..., pol, u, wave).
+
+    A batched matmul (BLAS), several times faster than the equivalent einsum."""
+    xs = np.swapaxes(x, -1, -2)[..., None]                       # (..., pol, wave, o, 1)
+    return np.swapaxes((matrix @ xs)[..., 0], -1, -2)
