@@ -18,20 +18,39 @@ from pathlib import Path
 
 from .errors import ConfigError
 
-__all__ = ["DEFAULT_CONFIG", "load_params", "read_overrides"]
+__all__ = ["DEFAULT_CONFIG", "load_params", "read_overrides", "read_toml", "require_field"]
 
 DEFAULT_CONFIG = Path(__file__).resolve().parent.parent / "calib" / "reduction.toml"
 
 
-def read_overrides(path) -> dict:
-    """The raw ``{stage: {key: value}}`` tables of one TOML file."""
+def read_toml(path, what: str = "configuration file") -> dict:
+    """Parse a TOML file; ``ConfigError`` naming the file if it is missing or not TOML."""
     try:
         with open(path, "rb") as fh:
-            data = tomllib.load(fh)
+            return tomllib.load(fh)
     except FileNotFoundError:
-        raise ConfigError(path, "configuration file not found") from None
+        raise ConfigError(path, f"{what} not found") from None
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(path, f"not valid TOML: {exc}") from None
+
+
+def require_field(d: dict, key: str, typ, source, where: str = ""):
+    """``d[key]`` checked to be of type ``typ`` (an int is accepted as a float);
+    ``ConfigError`` naming the file and the dotted field otherwise."""
+    if key not in d:
+        raise ConfigError(source, f"missing field '{where}{key}'")
+    value = d[key]
+    if typ is float and isinstance(value, int) and not isinstance(value, bool):
+        value = float(value)
+    if not isinstance(value, typ) or isinstance(value, bool) and typ is not bool:
+        raise ConfigError(source, f"field '{where}{key}' should be {typ.__name__}, "
+                                  f"found {type(value).__name__} {value!r}")
+    return value
+
+
+def read_overrides(path) -> dict:
+    """The raw ``{stage: {key: value}}`` tables of one TOML file."""
+    data = read_toml(path)
     for name, table in data.items():
         if not isinstance(table, dict):
             raise ConfigError(path, f"top-level key {name!r} should be a table [{name}] of "

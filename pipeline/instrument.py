@@ -9,7 +9,6 @@ for layout and first guesses).
 
 from __future__ import annotations
 
-import tomllib
 from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
@@ -17,6 +16,8 @@ from typing import Literal
 
 import numpy as np
 
+from .config import read_toml
+from .config import require_field as _get
 from .errors import ConfigError
 
 __all__ = ["Site", "Station", "Combiner", "Setup", "Detector", "FringeTracker", "Instrument",
@@ -184,18 +185,6 @@ class Instrument:
                                            f"known: {sorted(self.setups)}") from None
 
 
-def _get(d: dict, key: str, typ, source: str, where: str):
-    if key not in d:
-        raise ConfigError(source, f"missing field '{where}{key}'")
-    value = d[key]
-    if typ is float and isinstance(value, int) and not isinstance(value, bool):
-        value = float(value)
-    if not isinstance(value, typ) or isinstance(value, bool) and typ is not bool:
-        raise ConfigError(source, f"field '{where}{key}' should be {typ.__name__}, "
-                                  f"found {type(value).__name__} {value!r}")
-    return value
-
-
 def _positive(value: float, source: str, name: str) -> float:
     if not np.isfinite(value) or value <= 0:
         raise ConfigError(source, f"field '{name}' must be positive, found {value!r}")
@@ -245,13 +234,7 @@ def load_instrument(path=DEFAULT_INSTRUMENT) -> Instrument:
         or out of range.
     """
     src = str(path)
-    try:
-        with open(path, "rb") as fh:
-            d = tomllib.load(fh)
-    except FileNotFoundError:
-        raise ConfigError(src, "instrument model file not found") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(src, f"not valid TOML: {exc}") from None
+    d = read_toml(path, "instrument model file")
 
     for section in ("site", "stations", "telescope", "combiner", "metrology", "fringe_tracker",
                     "detectors", "setups"):

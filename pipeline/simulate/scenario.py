@@ -16,6 +16,7 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from ..config import require_field as _req
 from ..errors import ConfigError
 from ..instrument import CALIB_DIR
 
@@ -126,17 +127,6 @@ def _merge(section: str, given: dict, src: str) -> dict:
                                    f"{type(base[key]).__name__}, found {value!r}")
         base[key] = value
     return base
-
-
-def _req(d: dict, key: str, typ, src: str, where: str):
-    if key not in d:
-        raise ConfigError(src, f"missing field '{where}{key}'")
-    value = d[key]
-    if typ is float and isinstance(value, int) and not isinstance(value, bool):
-        value = float(value)
-    if not isinstance(value, typ):
-        raise ConfigError(src, f"field '{where}{key}' should be {typ.__name__}, found {value!r}")
-    return value
 
 
 def _pair(value, src, where) -> tuple[float, float]:
