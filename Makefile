@@ -47,4 +47,4 @@ clean:
 # Monte-Carlo check of the astrometric errors (pulls over many simulated nights); not part of `make test`.
 .PHONY: validate
 validate: $(STAMP)
-	$(PY) -m pipeline.validate --seeds 30 --scenario tiny --out build
+	$(PY) -m pipeline.validate --seeds 30 --scenario validate --out build
