@@ -34,6 +34,21 @@ def _truth(night):
     return json.loads((Path(night) / "truth.json").read_text())
 
 
+def _science_minus_dark(night):
+    """Truth, science channel and detector truth, the science file, its truth entry and
+    its frames minus the mean dark of the same DIT (ADU)."""
+    truth = _truth(night)
+    ch = truth["instrument"]["channels"]["sci-low-joint"]
+    det = truth["instrument"]["detectors"]["science"]
+    sci = _by_kind(night, "science")[0]
+    tf = truth["files"][sci.name]
+    dit = fits.getheader(sci)["SCDIT"]
+    dark = [f for f in _by_kind(night, "dark") if fits.getheader(f)["SCDIT"] == dit][0]
+    frames = (fits.getdata(sci, "SCI_PIX").astype(float)
+              - fits.getdata(dark, "SCI_PIX").astype(float).mean(0))
+    return truth, ch, det, sci, tf, frames
+
+
 def _by_kind(night, kind):
     return [f for f in _files(night) if fits.getheader(f)["FRAMEKND"] == kind]
 
@@ -311,16 +326,7 @@ def test_closure_phases_match_the_binary_formula(bright_night, instrument):
     the sky, the geometry, the combiner model and the bandpass integration together."""
     from scipy.special import erf
     from pipeline.skymodel import MAS, binary_visibility
-    night = bright_night
-    truth = _truth(night)
-    ch = truth["instrument"]["channels"]["sci-low-joint"]
-    det = truth["instrument"]["detectors"]["science"]
-    sci = _by_kind(night, "science")[0]
-    tf = truth["files"][sci.name]
-    dit = fits.getheader(sci)["SCDIT"]
-    dark = [f for f in _by_kind(night, "dark") if fits.getheader(f)["SCDIT"] == dit][0]
-    frames = (fits.getdata(sci, "SCI_PIX").astype(float)
-              - fits.getdata(dark, "SCI_PIX").astype(float).mean(0))
+    truth, ch, det, sci, tf, frames = _science_minus_dark(bright_night)
     n_f, _, n_x = frames.shape
     resp = np.array(det["pixel_response"])[:, :n_x]
     ty, tsig = np.array(ch["trace_y_px"]), np.array(ch["trace_sigma_px"])
@@ -419,15 +425,8 @@ def test_photometry_and_contrast_loss_of_the_science_frames(bright_night, instru
     from scipy.special import erf
     from pipeline.skymodel import MAS, binary_visibility
     h_planck, c_light = 6.62607015e-34, 299792458.0
-    truth = _truth(bright_night)
-    ch = truth["instrument"]["channels"]["sci-low-joint"]
-    det = truth["instrument"]["detectors"]["science"]
-    sci = _by_kind(bright_night, "science")[0]
-    tf = truth["files"][sci.name]
+    truth, ch, det, sci, tf, frames = _science_minus_dark(bright_night)
     dit = fits.getheader(sci)["SCDIT"]
-    dark = [f for f in _by_kind(bright_night, "dark") if fits.getheader(f)["SCDIT"] == dit][0]
-    frames = (fits.getdata(sci, "SCI_PIX").astype(float)
-              - fits.getdata(dark, "SCI_PIX").astype(float).mean(0))
     x = 12                                                   # a column near 2.2 um
     resp = np.array(det["pixel_response"])[:, x]
     ty, tsig = np.array(ch["trace_y_px"])[:, x], np.array(ch["trace_sigma_px"])[:, x]

@@ -8,8 +8,8 @@ nearest local minimum. We evaluate chi-square (squared visibilities and closure
 phases) on a square grid over the fibre's field with a step of at most a quarter
 of the smallest fringe spacing lambda_min / B_max, profiling the flux ratio over a
 small logarithmic grid, then refine the best few distinct local minima with a
-Levenberg-Marquardt least-squares fit (lmfit; More 1978, Lecture Notes in
-Mathematics 630, 105) of the full model, including referenced phases and the
+Levenberg-Marquardt least-squares fit (lmfit; More 1978, in Numerical Analysis,
+Springer LNM 630, 105) of the full model, including referenced phases and the
 primary's offset from the science pointing when calibrated phases are given. This
 is the approach of e.g. Le Bouquin & Absil 2012, A&A 541, A89 (chi-square maps of
 companion searches with interferometric closure phases and V2).
