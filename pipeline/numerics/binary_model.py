@@ -7,7 +7,8 @@ The complex visibility comes from :func:`pipeline.skymodel.binary_visibility`
 smearing per channel), the formulas the simulator also uses. This module adds
 the flux-ratio spectral law, the closure triangles, averaging over the frames
 of an exposure, and a chi-square evaluated on a grid of companion positions
-with every position broadcast at once (the global search of the binary fit).
+(the global search of the binary fit), the trial flux ratios sharing each
+position's phasors.
 
 Axes: ``pol`` (1 or 2), ``baseline`` (6, order of ``[combiner].baselines``),
 ``triangle`` (4, order of ``Combiner.triangles``), ``wave`` (channels),
@@ -20,7 +21,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from pipeline.skymodel import MAS, binary_visibility
+from pipeline.skymodel import (MAS, binary_visibility, fibre_coupling, point_phasor,
+                               smearing_envelope, uniform_disk_visibility)
 
 __all__ = ["BASELINES", "TRIANGLES", "REF_WAVE_M", "flux_ratio_law", "binary_observables",
            "grid_chi2", "make_residual", "wrap"]
@@ -110,16 +112,23 @@ def binary_observables(uvw_m, wave_m, *, dra_mas, ddec_mas, flux_ratio, flux_slo
 def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_mas,
               flux_ratios, bandwidth_m=None, fibre_fwhm_mas=None, primary_dra_mas=0.0,
               primary_ddec_mas=0.0, diameters_mas=(0.0, 0.0), baselines=BASELINES,
-              triangles=TRIANGLES, max_elements=2_000_000):
+              triangles=TRIANGLES, chunk_positions=128):
     """Chi-square of squared visibilities and closure phases on a grid of companions.
 
-    Vectorised over positions (numpy broadcasting in chunks of at most
-    ``max_elements`` complex model values). Invalid data points carry a weight of
-    zero (NaN value or non-positive/non-finite error). Polarisations are folded
-    before the loop: for V2, sum_p w_p (d_p - m)^2 = W m^2 - 2 m S + Q; for closure
-    phases the squared wrapped residual is replaced by its smooth surrogate
+    Invalid data points carry a weight of zero (NaN value or non-positive/non-finite
+    error). Polarisations are folded first: for V2, sum_p w_p (d_p - m)^2 = W m^2 - 2 m S + Q;
+    for closure phases the squared wrapped residual is replaced by its smooth surrogate
     2 (1 - cos(d - m)), equal to second order and exact at the minimum's location for
     small residuals.
+
+    The flux ratio r enters the model as V = (a + r b) / (f1 + r c), with a the
+    primary's term (per baseline and channel, fixed), b the companion's (phasor,
+    fibre coupling c, smearing and disk factors) and the denominator real. So
+    |a + r b|^2 = p0 + r p1 + r^2 p2 with real p_k, the V2 sums over baselines are
+    polynomials in r whose coefficients are summed once per position, and the
+    bispectrum's numerator is a cubic in r with complex coefficients. Each trial ratio
+    then costs real polynomial evaluations only; positions are processed in chunks of
+    ``chunk_positions`` so the working arrays stay in cache.
 
     Parameters
     ----------
@@ -141,30 +150,68 @@ def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_
     d2 = np.where(w2 > 0, vis2, 0.0)
     dt = np.where(wt > 0, t3phi, 0.0)
     W2, S2, Q2 = w2.sum(0), (w2 * d2).sum(0), (w2 * d2 ** 2).sum(0)       # (baseline, wave)
-    Wt, Zt = wt.sum(0), (wt * np.exp(1j * dt)).sum(0)                     # (triangle, wave)
+    Zt = (wt * np.exp(1j * dt)).sum(0)                                    # (triangle, wave)
     tri = _triangle_index(baselines, triangles)
     u, v = _uv(uvw_m)
     u, v = u[0], v[0]                                                     # (baseline, 1)
     wave = np.asarray(wave_m, float)
-    ratios = np.asarray(flux_ratios, float)[:, None, None]               # (ratio, 1, 1)
+    ratios = np.asarray(flux_ratios, float)
     dra, ddec = np.asarray(dra_mas, float), np.asarray(ddec_mas, float)
-    chunk = max(1, int(max_elements // (ratios.size * u.size * wave.size)))
+    fwhm = None if fibre_fwhm_mas is None else fibre_fwhm_mas * MAS
+    x1, y1 = primary_dra_mas * MAS, primary_ddec_mas * MAS
+
+    def star(x, y, diameter_mas):
+        """Fibre coupling (..., 1, wave) and visibility factor (..., baseline, wave)."""
+        coupling = (np.ones_like(wave) if fwhm is None
+                    else fibre_coupling(x, y, wave, fwhm))
+        vis = point_phasor(u, v, wave, x, y)
+        if diameter_mas:
+            vis = vis * uniform_disk_visibility(u, v, wave, diameter_mas * MAS)
+        if bandwidth_m is not None:
+            vis = vis * smearing_envelope(u * x + v * y, wave, bandwidth_m)
+        return coupling, vis
+
+    f1, v1 = star(x1, y1, diameters_mas[0])
+    a = f1 * v1                                                           # (baseline, wave)
+    p0 = np.abs(a) ** 2
+    A0 = (W2 * p0 ** 2).sum(0)                                            # (wave,)
+    B0 = (S2 * p0).sum(0)
+    a_ij, a_jk, a_ik = a[tri[:, 0]], a[tri[:, 1]], np.conj(a[tri[:, 2]])
+    z_conj = np.conj(Zt)
+    q_total = Q2.sum()
+    t_total = 2 * wt.sum()
     out = np.empty((dra.size, ratios.size))
-    for s in range(0, dra.size, chunk):
-        dx = dra[s:s + chunk, None, None, None] * MAS                     # (pos, 1, 1, 1)
-        dy = ddec[s:s + chunk, None, None, None] * MAS
-        vis = binary_visibility(
-            u, v, wave, dx_rad=dx, dy_rad=dy, flux_ratio=ratios,
-            x1_rad=primary_dra_mas * MAS, y1_rad=primary_ddec_mas * MAS,
-            diameter1_rad=diameters_mas[0] * MAS, diameter2_rad=diameters_mas[1] * MAS,
-            bandwidth_m=bandwidth_m,
-            fibre_fwhm_rad_at_2p2um=None if fibre_fwhm_mas is None else fibre_fwhm_mas * MAS)
-        m2 = vis.real ** 2 + vis.imag ** 2                                # (pos, ratio, bl, wave)
-        c2 = (W2 * m2 ** 2 - 2 * m2 * S2 + Q2).sum((-1, -2))
-        bis = vis[..., tri[:, 0], :] * vis[..., tri[:, 1], :] * np.conj(vis[..., tri[:, 2], :])
-        cos_res = (bis.real * Zt.real + bis.imag * Zt.imag) / np.maximum(np.abs(bis), 1e-300)
-        ct = (2 * Wt - 2 * cos_res).sum((-1, -2))
-        out[s:s + chunk] = c2 + ct
+    for s in range(0, dra.size, chunk_positions):
+        x2 = x1 + dra[s:s + chunk_positions, None, None] * MAS             # (pos, 1, 1)
+        y2 = y1 + ddec[s:s + chunk_positions, None, None] * MAS
+        c, v2 = star(x2, y2, diameters_mas[1])
+        c = c[:, 0]                                                       # (pos, wave)
+        b = c[:, None] * v2                                               # (pos, baseline, wave)
+        p1 = 2 * (a.real * b.real + a.imag * b.imag)
+        p2 = b.real ** 2 + b.imag ** 2
+        # V2: sum_bl W m^2 = (sum_k A_k r^k) / den^4, sum_bl S m = (sum_k B_k r^k) / den^2
+        A1 = 2 * np.einsum("bw,pbw->pw", W2 * p0, p1)
+        A2 = np.einsum("bw,pbw->pw", W2, p1 ** 2 + 2 * p0 * p2)
+        A3 = 2 * np.einsum("bw,pbw,pbw->pw", W2, p1, p2)
+        A4 = np.einsum("bw,pbw->pw", W2, p2 ** 2)
+        B1 = np.einsum("bw,pbw->pw", S2, p1)
+        B2 = np.einsum("bw,pbw->pw", S2, p2)
+        # Closure phases: N_ij N_jk conj(N_ik) = g0 + g1 r + g2 r^2 + g3 r^3, projected on Z
+        b_ij, b_jk, b_ik = b[:, tri[:, 0]], b[:, tri[:, 1]], np.conj(b[:, tri[:, 2]])
+        g = (a_ij * a_jk * a_ik,
+             b_ij * a_jk * a_ik + a_ij * b_jk * a_ik + a_ij * a_jk * b_ik,
+             b_ij * b_jk * a_ik + b_ij * a_jk * b_ik + a_ij * b_jk * b_ik,
+             b_ij * b_jk * b_ik)
+        e0, e1, e2, e3 = ((gk * z_conj).real for gk in g)      # (pos, triangle, wave); e0 (triangle, wave)
+        for k, r in enumerate(ratios):
+            den2 = 1.0 / (f1 + r * c) ** 2                                # (pos, wave)
+            v2_sum = (den2 ** 2 * (A0 + r * (A1 + r * (A2 + r * (A3 + r * A4))))
+                      - 2 * den2 * (B0 + r * (B1 + r * B2))).sum(-1)
+            q = p0 + r * (p1 + r * p2)                                    # |N|^2 per baseline
+            mod = np.sqrt(q[:, tri[:, 0]] * q[:, tri[:, 1]] * q[:, tri[:, 2]])
+            num = e0 + r * (e1 + r * (e2 + r * e3))
+            cp_sum = (num / np.maximum(mod, 1e-300)).sum((-1, -2))
+            out[s:s + chunk_positions, k] = v2_sum + q_total + t_total - 2 * cp_sum
     return out
 
 
