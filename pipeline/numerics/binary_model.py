@@ -24,8 +24,9 @@ import numpy as np
 from pipeline.skymodel import (MAS, binary_visibility, fibre_coupling, point_phasor,
                                smearing_envelope, uniform_disk_visibility)
 
-__all__ = ["BASELINES", "TRIANGLES", "REF_WAVE_M", "flux_ratio_law", "binary_observables",
-           "grid_chi2", "make_residual", "wrap"]
+__all__ = ["BASELINES", "TRIANGLES", "REF_WAVE_M", "PARAM_NAMES", "flux_ratio_law",
+           "binary_observables", "binary_observables_batch", "grid_chi2", "make_residual",
+           "wrap"]
 
 BASELINES = ((0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3))
 TRIANGLES = ((0, 1, 2), (0, 1, 3), (0, 2, 3), (1, 2, 3))
@@ -35,7 +36,8 @@ REF_WAVE_M = 2.2e-6
 
 def wrap(angle_rad):
     """Wrap angles to (-pi, pi]."""
-    return np.angle(np.exp(1j * np.asarray(angle_rad)))
+    out = np.pi - np.remainder(np.pi - np.asarray(angle_rad, float), 2 * np.pi)
+    return out
 
 
 def flux_ratio_law(wave_m, flux_ratio, slope=0.0):
@@ -107,6 +109,64 @@ def binary_observables(uvw_m, wave_m, *, dra_mas, ddec_mas, flux_ratio, flux_slo
     bis = vis[:, tri[:, 0]] * vis[:, tri[:, 1]] * np.conj(vis[:, tri[:, 2]])
     return (np.mean(np.abs(vis) ** 2, axis=0), np.angle(np.mean(bis, axis=0)),
             np.angle(np.mean(vis, axis=0)))
+
+
+PARAM_NAMES = ("dra", "ddec", "flux_ratio", "flux_slope", "primary_dra", "primary_ddec",
+               "diameter1", "diameter2")
+"""Parameters of the binary model (mas, except the flux ratio and its slope)."""
+
+
+def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_fwhm_mas=None,
+                             baselines=BASELINES, triangles=TRIANGLES):
+    """:func:`binary_observables` for many parameter sets at once.
+
+    Parameters
+    ----------
+    uvw_m : ndarray, shape (n_baseline, 3) or (n_time, n_baseline, 3), metres
+    wave_m : ndarray, shape (n_wave,), metres
+    params : mapping of :data:`PARAM_NAMES` to arrays of shape (n_set,) (or floats)
+    bandwidth_m, fibre_fwhm_mas, baselines, triangles : as :func:`binary_observables`
+
+    Returns
+    -------
+    vis2 : ndarray, shape (n_set, n_baseline, n_wave)
+    t3phi : ndarray, shape (n_set, n_triangle, n_wave), radians
+    visphi : ndarray, shape (n_set, n_baseline, n_wave), radians
+
+    The model is that of ``pipeline.skymodel.binary_visibility``, composed here from the
+    same factors (phasors, disks, smearing, fibre coupling) because its diameters must
+    be scalars.
+    """
+    u, v = _uv(uvw_m)                                               # (time, baseline, 1)
+    wave = np.asarray(wave_m, float)
+    n = np.broadcast(*[np.asarray(params.get(k, 0.0)) for k in PARAM_NAMES]).size
+
+    def par(name):                                                  # (set, 1, 1, 1)
+        return np.broadcast_to(np.asarray(params.get(name, 0.0), float), (n,))[:, None, None,
+                                                                                  None]
+    x1, y1 = par("primary_dra") * MAS, par("primary_ddec") * MAS
+    x2, y2 = x1 + par("dra") * MAS, y1 + par("ddec") * MAS
+    f1 = np.ones_like(wave)
+    f2 = flux_ratio_law(wave, par("flux_ratio"), par("flux_slope"))
+    if fibre_fwhm_mas is not None:
+        f1 = f1 * fibre_coupling(x1, y1, wave, fibre_fwhm_mas * MAS)
+        f2 = f2 * fibre_coupling(x2, y2, wave, fibre_fwhm_mas * MAS)
+    v1 = point_phasor(u, v, wave, x1, y1)                           # (set, time, baseline, wave)
+    v2 = point_phasor(u, v, wave, x2, y2)
+    for name, x, y, vis in (("diameter1", x1, y1, v1), ("diameter2", x2, y2, v2)):
+        d = par(name)
+        if np.any(d != 0):
+            vis *= uniform_disk_visibility(u, v, wave, d * MAS)
+        if bandwidth_m is not None:
+            vis *= smearing_envelope(u * x + v * y, wave, bandwidth_m)
+    vis = (f1 * v1 + f2 * v2) / (f1 + f2)
+    tri = _triangle_index(baselines, triangles)
+    bis = vis[..., tri[:, 0], :] * vis[..., tri[:, 1], :] * np.conj(vis[..., tri[:, 2], :])
+    if vis.shape[1] == 1:                                           # one (u, v) per baseline
+        vis, bis = vis[:, 0], bis[:, 0]
+        return vis.real ** 2 + vis.imag ** 2, np.angle(bis), np.angle(vis)
+    return (np.mean(vis.real ** 2 + vis.imag ** 2, axis=1), np.angle(np.mean(bis, axis=1)),
+            np.angle(np.mean(vis, axis=1)))
 
 
 def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_mas,
