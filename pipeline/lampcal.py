@@ -58,7 +58,7 @@ def _nominal_trace_y(setup, polmode, n_out):
 # -- flat -----------------------------------------------------------------------------------
 
 def flat_products(raws, dark, *, instrument, setup_name, polmode, frames_per_chunk=16,
-                  centre_deg=2, sigma_deg=2, spectrum_deg=6, max_saturated=0.001,
+                  centre_deg=2, sigma_deg=2, spectrum_deg=3, max_saturated=0.001,
                   response_range=(0.5, 1.5)) -> dict:
     """Traces, cross-profiles, pixel response and bad-pixel mask from lamp flats."""
     check_raw(raws, kind="flat", setup=setup_name, polmode=polmode)
@@ -331,7 +331,7 @@ def _to_pol_output(a, n_pol):
 
 def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pixel,
                       bandwidth_pixel, wave_grid, n_pol, instrument, resample=True,
-                      window_coherence=0.5) -> dict:
+                      window_coherence=0.5, transmission_deg=3) -> dict:
     """Combiner calibration from single-beam mean spectra and the delay scan.
 
     Parameters
@@ -343,6 +343,10 @@ def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pi
         tracker, calibrated per pixel (its ``wave`` axis is the FT pixel)
     window_coherence : float -- fringe phasors are fitted within this many coherence
         lengths lambda^2 / bandwidth of zero OPD
+    transmission_deg : int -- the resampled (science) shares are replaced by a polynomial
+        of this degree in wavelength (:func:`combiner_model.smooth_transmissions`); -1
+        keeps the per-channel values. The fringe tracker, calibrated per pixel with the
+        pixel response inside its shares, is never smoothed.
     """
     comb = instrument.combiner
     if not resample:     # per-pixel channel: refer every output to the median wavelength
@@ -368,7 +372,12 @@ def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pi
     else:
         beam, zg, dcg = beam_flux, z, dc
         intens, ivar = scan_intensity[near], scan_var[near]
-    t = cm.transmissions(_to_pol_output(beam, n_pol))
+    t = t_measured = cm.transmissions(_to_pol_output(beam, n_pol))
+    if resample and transmission_deg >= 0:
+        # photon noise of a share ~ 1 / sqrt(the telescope's total flux in that channel)
+        total = _to_pol_output(beam, n_pol).sum(axis=2)                 # (telescope, pol, wave)
+        weight = np.sqrt(np.clip(total, 0, None)).transpose(1, 0, 2)[:, None]
+        t = cm.smooth_transmissions(t_measured, wave_grid, deg=transmission_deg, weight=weight)
     contrast, phase, lamp = cm.contrast_and_phase(_to_pol_output(zg, n_pol),
                                                   _to_pol_output(dcg, n_pol), t, comb.output_pair)
     v2pm = cm.build_v2pm(t, contrast, phase, comb.output_pair, n_baseline=len(comb.baselines))
@@ -380,6 +389,9 @@ def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pi
     pow_, pw, pb = ("pol", "output", "wave"), ("pol", "wave"), ("pol", "baseline", "wave")
     return {"transmission": Array(t, ("pol", "output", "telescope", "wave"), "",
                                   "share of each telescope's flux per output"),
+            "transmission_measured": Array(t_measured, ("pol", "output", "telescope", "wave"), "",
+                                           "QC: per-channel shares before smoothing"),
+            "transmission_deg": int(transmission_deg if resample else -1),
             "contrast": Array(contrast, pow_, ""), "phase_shift": Array(phase, pow_, "rad"),
             "v2pm": Array(v2pm, ("pol", "wave", "output", "unknown"), "",
                           "columns F_0..F_3, Re C_01..Re C_23, Im C_01..Im C_23"),
@@ -434,7 +446,8 @@ def require_beams(raws):
 
 
 def combiner_science(beam_raws, scan, *, dark_beam, dark_scan, flat, wavecal, instrument,
-                     setup_name, polmode, window=0.5, frames_per_chunk=16) -> dict:
+                     setup_name, polmode, window=0.5, frames_per_chunk=16,
+                     transmission_deg=3) -> dict:
     """Combiner products of a science channel from its four single-beam exposures and
     its delay scan (extracted with the flat, resampled to the wavecal grid)."""
     beams = require_beams(beam_raws)
@@ -450,7 +463,7 @@ def combiner_science(beam_raws, scan, *, dark_beam, dark_scan, flat, wavecal, in
                              wave_pixel=wavecal["wave_pixel"],
                              bandwidth_pixel=wavecal["bandwidth_pixel"],
                              wave_grid=wavecal["wave_grid"], n_pol=n_pol, instrument=instrument,
-                             window_coherence=window)
+                             window_coherence=window, transmission_deg=transmission_deg)
 
 
 def combiner_ft(beam_raws, scan, *, ft_dark, wavecal, instrument, window=0.5) -> dict:

@@ -19,10 +19,12 @@ from recipes.wavecal import ft_scan_record
 class CombinerParams:
     frames_per_chunk: int = 16      # frames read at a time (bounded memory)
     window: float = 0.5             # fringe phasors fitted within this many coherence lengths
+    transmission_deg: int = 3       # polynomial in wavelength through the science shares; -1 off
 
     def __post_init__(self):
-        if self.frames_per_chunk < 1 or self.window <= 0:
-            raise ValueError("combiner needs frames_per_chunk >= 1 and window > 0")
+        if self.frames_per_chunk < 1 or self.window <= 0 or self.transmission_deg < -1:
+            raise ValueError("combiner needs frames_per_chunk >= 1, window > 0 and "
+                             "transmission_deg >= -1")
 
 
 def plan(inventory: Inventory, params: CombinerParams, upstream) -> list[Unit]:
@@ -63,9 +65,10 @@ def run(inputs, params: CombinerParams) -> dict:
     return combiner_science(beams, scan, dark_beam=p["dark_beam"], dark_scan=p["dark_scan"],
                             flat=p["flat"], wavecal=p["wavecal"], instrument=inputs.instrument,
                             setup_name=meta["setup"], polmode=meta["polmode"],
-                            window=params.window, frames_per_chunk=params.frames_per_chunk)
+                            window=params.window, frames_per_chunk=params.frames_per_chunk,
+                            transmission_deg=params.transmission_deg)
 
 
-STAGE = Stage(name="combiner", version="1", params=CombinerParams, after=("dark", "flat", "wavecal"),
+STAGE = Stage(name="combiner", version="2", params=CombinerParams, after=("dark", "flat", "wavecal"),
               granularity="setup", plan=plan, run=run,
               doc="transmissions, contrasts, phase shifts, visibility-to-pixel matrix and inverse")

@@ -16,7 +16,7 @@ from pipeline.stage import Stage, Unit
 class FlatParams:
     centre_deg: int = 2             # polynomial degree of the trace centre y_k(x)
     sigma_deg: int = 2              # polynomial degree of the profile width sigma_k(x)
-    spectrum_deg: int = 6           # smoothing degree of the lamp spectrum along x
+    spectrum_deg: int = 3           # smoothing degree of the lamp spectrum along x (see toml)
     response_low: float = 0.5       # pixels with a response outside [low, high] are bad
     response_high: float = 1.5
     max_saturated: float = 0.001    # fraction of saturated trace pixels that fails a flat
@@ -65,6 +65,6 @@ def run(inputs, params: FlatParams) -> dict:
                          response_range=(params.response_low, params.response_high))
 
 
-STAGE = Stage(name="flat", version="1", params=FlatParams, after=("dark",),
+STAGE = Stage(name="flat", version="2", params=FlatParams, after=("dark",),
               granularity="setup", plan=plan, run=run,
               doc="trace centres and profiles, pixel response, bad-pixel mask per set-up")

@@ -5,9 +5,10 @@ The flat, wavecal and combiner stages run through the engine on the `tiny` night
 (low resolution, joint polarisation). Truth comes from truth.json (docs/truth.md):
 per-pixel effective wavelengths and bandwidths, trace centres and widths, and the
 chromatic laws of the true combiner, which this file evaluates itself at the
-product's wavelengths. The inverse-model check synthesises frames of an
-unresolved source with an independent forward model written here from the
-combiner equation of DEVELOPERS.md.
+product's wavelengths. The inverse-model check synthesises the outputs of an
+unresolved source with the forward model of pipeline/calibration_truth.py, written
+from the combiner equation of DEVELOPERS.md and sharing nothing with the simulator
+or the reduction's inverse code.
 
 The tiny night's lamp exposures are short (3 single-beam frames of 20 ms), so its
 transmissions are photon-limited at ~0.5% per wavelength: tolerances below are set
@@ -21,7 +22,10 @@ import numpy as np
 import pytest
 from astropy.io import fits
 
+from pipeline.calibration_truth import (nominal_p2vm, true_laws, unit_source_intensities,
+                                        visibilities)
 from pipeline.errors import BadInput, MissingCalibration
+from pipeline.instrument import load_instrument
 from pipeline.lampcal import flat_products, frame_opd, require_beams
 from pipeline.rawio import RawExposure
 from pipeline.store import ProductView, products_of
@@ -41,20 +45,9 @@ def cal(tiny_work):
 
 
 def _laws(law, wave):
-    """The true combiner's laws (docs/truth.md, combiner_laws) at wave (output, n)."""
-    xi = (wave - 2.2e-6) / 0.2e-6
-    amp, tc = np.array(law["amp"]), np.array(law["t_chromatic"])
-    ph, thn = np.array(law["theta_poly_rad"]), np.array(law["theta_nominal_rad"])
-    t = np.zeros((24, 4, wave.shape[-1]))
-    pairs = np.repeat([[0, 1], [0, 2], [0, 3], [1, 2], [1, 3], [2, 3]], 4, axis=0)
-    for k, (i, j) in enumerate(pairs):
-        for a, tel in ((0, i), (1, j)):
-            t[k, tel] = law["t_nominal"] * amp[k, a] * (1 + tc[k, a, 0] * xi[k]
-                                                        + tc[k, a, 1] * xi[k] ** 2)
-    theta = thn[:, None] + ph[:, :1] + ph[:, 1:2] * xi + ph[:, 2:3] * xi ** 2
-    c = np.clip(np.array(law["contrast_c0"])[:, None] + np.array(law["contrast_c1"])[:, None] * xi,
-                *law["contrast_clip"])
-    return t, theta, c, pairs
+    """The true laws at wave (output, n), the shares' pairs (docs/truth.md)."""
+    pairs = np.asarray(load_instrument().combiner.output_pair)
+    return (*true_laws(law, wave, pairs), pairs)
 
 
 def test_traces_match_truth(cal):
@@ -109,33 +102,6 @@ def test_combiner_matches_truth(cal, label):
     np.testing.assert_allclose(cb["phase_closure"][0], 0, atol=1e-9)
 
 
-def _synthesise(t, theta, c, pairs, flux):
-    """Unresolved source, no atmosphere: C_ij = sqrt(F_i F_j), V = 1 (DEVELOPERS.md)."""
-    inten = np.zeros((24, t.shape[-1]))
-    for k, (i, j) in enumerate(pairs):
-        coh = np.sqrt(flux[i] * flux[j])
-        inten[k] = (t[k, i] * flux[i] + t[k, j] * flux[j]
-                    + 2 * np.sqrt(t[k, i] * t[k, j]) * c[k] * np.real(coh * np.exp(1j * theta[k])))
-    return inten
-
-
-def _visibility(p2vm, inten):
-    x = np.einsum("wuk,kw->uw", p2vm, inten)
-    f = x[:4]
-    coh = x[4:10] + 1j * x[10:]
-    base = [(0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3)]
-    return np.stack([coh[b] / np.sqrt(f[i] * f[j]) for b, (i, j) in enumerate(base)])
-
-
-def _nominal_p2vm(wave_n, pairs):
-    from pipeline.numerics.combiner_model import build_v2pm, weighted_pinv
-    t = np.zeros((1, 24, 4, wave_n))
-    for k, (i, j) in enumerate(pairs):
-        t[0, k, [i, j]] = 1 / 12                         # calib/instrument.toml nominal
-    th = np.deg2rad(np.tile([0.0, 90.0, 180.0, 270.0], 6))[None, :, None] * np.ones((1, 1, wave_n))
-    return weighted_pinv(build_v2pm(t, np.ones((1, 24, wave_n)), th, pairs))[0]
-
-
 @pytest.mark.parametrize("label", [LABEL, "ft"])
 def test_inverse_model_gives_unit_visibility(cal, label):
     _, _, truth, view = cal
@@ -149,8 +115,8 @@ def test_inverse_model_gives_unit_visibility(cal, label):
     if label == "ft":          # no flat field on the FT: its pixel response is part of t
         t = t * np.array(truth["instrument"]["detectors"]["ft"]["pixel_response"])[:, None, :]
     flux = np.array([1.0e5, 0.8e5, 1.2e5, 0.9e5])[:, None] * np.ones((1, wave.shape[1]))
-    inten = _synthesise(t, theta, c, pairs, flux)
-    vis = _visibility(cb["p2vm"][0], inten)
+    inten = unit_source_intensities(t, theta, c, pairs, flux)
+    vis = visibilities(cb["p2vm"][0], inten)
     amp_err = np.abs(np.abs(vis) - 1)
     ph_err = np.abs(np.rad2deg(np.angle(vis)))
     # Project brief: |V| = 1 within 1% and phase 0 within 1 deg. On the tiny night the
@@ -159,7 +125,7 @@ def test_inverse_model_gives_unit_visibility(cal, label):
     # the worst of 132 values may reach 2.5 sigma-ish excursions (2.5%, 1.5 deg).
     assert np.sqrt(np.mean(amp_err ** 2)) < 0.01 and amp_err.max() < 0.025
     assert np.sqrt(np.mean(ph_err ** 2)) < 0.6 and ph_err.max() < 1.5
-    nominal = _visibility(_nominal_p2vm(wave.shape[1], pairs), inten)
+    nominal = visibilities(nominal_p2vm(load_instrument(), wave.shape[1]), inten)
     # the nominal model ignores +-20% transmissions, 0.8-0.98 contrasts and ~10 deg phase
     # errors: several times worse
     assert np.sqrt(np.mean((np.abs(nominal) - 1) ** 2)) > 3 * np.sqrt(np.mean(amp_err ** 2))
@@ -183,7 +149,6 @@ def test_bad_calibration_frames_are_named(cal, tmp_path):
     flats = sorted(night.glob("*_flat_*.fits"))
     beams = [RawExposure(p) for p in sorted(night.glob("*_lamp-beam_*.fits"))]
     dark_view = ProductView(products_of(work, "dark", f"{LABEL}-dit0.02")[-1])
-    from pipeline.instrument import load_instrument
     inst = load_instrument()
     # a missing single-beam exposure
     with pytest.raises(MissingCalibration, match=r"beam\(s\) \[3\]"):
@@ -204,3 +169,21 @@ def test_bad_calibration_frames_are_named(cal, tmp_path):
         flat_products([RawExposure(bad)], dark_view, instrument=inst, setup_name="low",
                       polmode="joint")
     assert err.value.path == str(bad)
+
+
+def test_calibration_truth_command(cal, tmp_path, capsys):
+    """`python -m pipeline.calibration_truth NIGHT WORK --json F` reports every channel
+    with the figures asked of these calibrations (project brief) where the tiny night's
+    photon noise allows them (see the tolerances above)."""
+    from pipeline.calibration_truth import main
+    night, work, _, _ = cal
+    out = tmp_path / "cal.json"
+    assert main([str(night), str(work), "--json", str(out)]) == 0
+    assert "unit_vis_amp_max" in capsys.readouterr().out
+    res = json.loads(out.read_text())
+    assert set(res) == {LABEL, "ft"}
+    for label, fig in res.items():
+        assert fig["wave_rel_rms"] < 1e-3 and fig["bandwidth_rel_max"] < 0.05, label
+        assert fig["phase_deg_max"] < 1.0 and fig["contrast_rms"] < 0.01, label
+        assert fig["unit_vis_amp_rms"] < 0.01 and fig["unit_vis_phase_deg_rms"] < 0.6, label
+        assert fig["nominal_vis_amp_rms"] > 3 * fig["unit_vis_amp_rms"], label

@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["N_UNKNOWN", "transmissions", "contrast_and_phase", "build_v2pm", "weighted_pinv",
+__all__ = ["N_UNKNOWN", "transmissions", "smooth_transmissions", "contrast_and_phase", "build_v2pm", "weighted_pinv",
            "condition_number", "model_residuals", "phase_set_qc", "output_noise_weights"]
 
 N_UNKNOWN = 16
@@ -51,6 +51,50 @@ def transmissions(beam_flux):
     with np.errstate(invalid="ignore", divide="ignore"):
         t = b / total
     return t.transpose(1, 2, 0, 3)
+
+
+def smooth_transmissions(t, wave, *, deg: int, weight=None):
+    """Low-order polynomial in wavelength through each output's measured share.
+
+    The shares of a combiner are smooth functions of wavelength (its optics have no
+    spectral structure on the scale of a few channels), while the per-channel
+    measurement from short single-beam lamp frames carries photon noise. A
+    weighted least-squares polynomial of degree ``deg`` in scaled wavelength per
+    (pol, output, telescope) keeps the chromatic trend and averages the noise over
+    the band; the result is renormalised so the shares still sum to 1 over outputs.
+
+    Parameters
+    ----------
+    t : array_like, shape (pol, output, telescope, wave)
+        Measured shares (see :func:`transmissions`); NaN channels are left out of the fit.
+    wave : array_like, shape (wave,), m
+    deg : int -- polynomial degree (>= 0)
+    weight : array_like, broadcastable to ``t``, optional
+        Inverse standard deviation of each share (default: uniform).
+
+    Returns
+    -------
+    ndarray, shape of ``t``: smoothed shares. A NaN channel is filled by the polynomial;
+    a column with no more than ``deg`` finite channels is NaN (and so, through the
+    renormalisation, is its telescope's share in every output).
+    """
+    if deg < 0:
+        raise ValueError(f"transmission smoothing degree must be >= 0, found {deg}")
+    t = np.asarray(t, float)
+    x = np.asarray(wave, float)
+    x = 2 * (x - x.mean()) / max(np.ptp(x), 1e-300)                   # -1 .. 1
+    w = np.broadcast_to(np.ones(1) if weight is None else np.asarray(weight, float), t.shape)
+    ok = np.isfinite(t) & np.isfinite(w) & (w > 0)
+    enough = ok.sum(-1) > deg                                        # (pol, output, telescope)
+    vander = np.vander(x, deg + 1, increasing=True)                  # (wave, coef)
+    ww = np.where(ok, w, 0.0) ** 2
+    lhs = np.einsum("...w,wi,wj->...ij", ww, vander, vander)
+    lhs = np.where(enough[..., None, None], lhs, np.eye(deg + 1))
+    rhs = np.einsum("...w,wi,...w->...i", ww, vander, np.where(ok, t, 0.0))
+    coef = np.linalg.solve(lhs, rhs[..., None])[..., 0]
+    smooth = np.where(enough[..., None], np.einsum("...i,wi->...w", coef, vander), np.nan)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return smooth / smooth.sum(axis=1, keepdims=True)
 
 
 def contrast_and_phase(fringe, incoherent, t, pairs):

@@ -18,8 +18,10 @@ from .truth_instrument import draw_combiner, ft_channel, science_channel
 
 __all__ = ["World", "SCAN_RATIOS", "SIDEREAL_RATE", "N_SUB_T", "COARSE_WAVE"]
 
-SCAN_RATIOS = np.array([0.0, 1 / 7, 3 / 7, 1.0])
-"""Scan speed of beams 1..4 relative to beam 4: baseline OPD speeds 1..7 /7, all distinct."""
+SCAN_RATIOS = np.array([0.0, 1 / 3, 2 / 3, 1.0])
+"""Scan speed of beams 1..4 relative to beam 4: baseline OPD speeds 1/3, 2/3 and 1. Evenly
+spaced ratios give the slowest baseline the largest share of the fastest one's OPD range
+(a third), so every baseline's fringe envelope is measured within one scan."""
 SIDEREAL_RATE = 2 * np.pi * 1.00273781191 / 86400.0   # rad of hour angle per second of UTC
 N_SUB_T = 4                                            # time samples per fringe-tracker frame
 COARSE_WAVE = np.linspace(1.85e-6, 2.55e-6, 36)        # grid of frame-averaged phasors

@@ -13,7 +13,8 @@ from scipy.linalg import lstsq
 
 from pipeline.numerics.combiner_model import (build_v2pm, condition_number, contrast_and_phase,
                                               model_residuals, output_noise_weights,
-                                              phase_set_qc, transmissions, weighted_pinv)
+                                              phase_set_qc, smooth_transmissions,
+                                              transmissions, weighted_pinv)
 
 BASELINES = [(0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3)]
 PAIRS = np.repeat(np.array(BASELINES), 4, axis=0)          # output k -> baseline k // 4
@@ -122,3 +123,39 @@ def test_nan_propagates_to_its_wavelength_only(rng):
     p2vm = weighted_pinv(build_v2pm(t, c, th, PAIRS))
     assert np.isnan(p2vm[0, 2]).all() and np.isfinite(p2vm[0, [0, 1, 3, 4]]).all()
     assert np.isnan(condition_number(build_v2pm(t, c, th, PAIRS))[0, 2])
+
+
+def test_smooth_transmissions_averages_photon_noise(rng):
+    """Shares that are cubic in wavelength plus white noise: the fitted polynomial is
+    numpy's weighted least-squares fit (independent route: numpy.polynomial.polyfit on
+    one column), keeps sum over outputs = 1, and cuts the noise by about
+    sqrt((deg + 1) / n_wave) (least-squares variance of a polynomial, common knowledge)."""
+    n_wave, deg = 200, 3
+    wave = np.linspace(1.95e-6, 2.45e-6, n_wave)
+    xi = (wave - 2.2e-6) / 0.25e-6
+    raw = np.zeros((1, 24, 4, n_wave))
+    for k, (i, j) in enumerate(PAIRS):
+        for tel in (i, j):
+            c = rng.uniform(-0.05, 0.05, 4) * [1, 1, 0.5, 0.2]
+            raw[0, k, tel] = (1 + rng.uniform(-0.2, 0.2)) * (1 + c[1] * xi + c[2] * xi ** 2
+                                                           + c[3] * xi ** 3)
+    true = raw / raw.sum(axis=1, keepdims=True)
+    noisy = true * (1 + 0.01 * rng.standard_normal(true.shape))
+    noisy[0, 5, PAIRS[5, 0], 17] = np.nan                 # one lost channel: filled
+    sm = smooth_transmissions(noisy, wave, deg=deg)
+    np.testing.assert_allclose(np.nansum(sm, axis=1)[:, [0, 1, 2, 3]], 1.0, rtol=1e-12)
+    k = np.arange(24)
+    err_raw = np.nanstd(noisy[0, k, PAIRS[:, 0]] / true[0, k, PAIRS[:, 0]] - 1)
+    err_sm = np.std(sm[0, k, PAIRS[:, 0]] / true[0, k, PAIRS[:, 0]] - 1)
+    assert np.isfinite(sm[0, 5, PAIRS[5, 0], 17])
+    assert err_sm < 2.0 * err_raw * np.sqrt((deg + 1) / n_wave)      # ~0.14 x
+    # one column against numpy's own fit (before the renormalisation, which is ~1e-4 here)
+    x = 2 * (wave - wave.mean()) / np.ptp(wave)
+    ref = np.polynomial.polynomial.polyval(x, np.polynomial.polynomial.polyfit(
+        x, noisy[0, 0, PAIRS[0, 0]], deg))
+    np.testing.assert_allclose(sm[0, 0, PAIRS[0, 0]], ref, rtol=2e-3)
+    with pytest.raises(ValueError, match="degree"):
+        smooth_transmissions(noisy, wave, deg=-1)
+    few = noisy.copy()
+    few[0, 3, PAIRS[3, 1], 3:] = np.nan                   # 3 finite channels < deg + 1
+    assert np.isnan(smooth_transmissions(few, wave, deg=deg)[0, :, PAIRS[3, 1]]).all()

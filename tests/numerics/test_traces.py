@@ -128,3 +128,26 @@ def test_response_with_smooth_spectrum_recovers_prnu(rng):
     dev = r[core] / resp[core] - 1
     assert np.sqrt(np.mean(dev ** 2)) < 0.005 and np.max(np.abs(dev)) < 0.02
     np.testing.assert_allclose(lamp, amps, rtol=0.02)
+
+
+@pytest.mark.parametrize("spacing", [8.0, 4.0])   # joint and split polarisation layouts
+def test_lamp_amplitude_is_window_flux_despite_a_wrong_width(rng, spacing):
+    """A profile 3% too wide biases a least-squares amplitude by about +1.5% (for
+    Gaussians, int(P_m P_t) / int(P_m^2) = sqrt(2 s_m^2 / (s_m^2 + s_t^2)), standard
+    integral); the lamp amplitude of pixel_response is the flux collected in the
+    trace's window instead, so the trace's throughput is not biased by the width."""
+    n_y, n_x, n_t = 70, 32, 6
+    centres = (10 + spacing * np.arange(n_t))[:, None] + np.zeros((1, n_x))
+    sigmas = np.full((n_t, n_x), 1.0)
+    amps = 3e5 * rng.uniform(0.7, 1.3, (n_t, 1)) * np.ones((1, n_x))
+    img, _ = _draw_flat(rng, n_y=n_y, n_x=n_x, centres=centres, sigmas=sigmas, amps=amps)
+    from pipeline.numerics.traces import fit_amplitudes
+    wide = 1.03 * sigmas
+    biased, _ = fit_amplitudes(img, centres, wide)
+    # (with the fitted constant background of fit_amplitudes the bias is larger still)
+    assert spacing == 4.0 or np.all(biased / amps - 1 > np.sqrt(2 * 1.03 ** 2 / (1.03 ** 2 + 1)) - 1 - 1e-3)
+    _, lamp = pixel_response(img, centres, wide)
+    if spacing == 8.0:   # isolated: the +-3 sigma window keeps 99.7% of the flux
+        np.testing.assert_allclose(lamp / amps, 1.0, atol=0.001)
+    else:                # overlapping (split polarisation): the least-squares amplitude
+        np.testing.assert_allclose(lamp, biased, rtol=1e-12)
