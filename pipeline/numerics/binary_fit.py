@@ -485,8 +485,8 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
 
     The least-squares problem of :func:`pipeline.numerics.binary_model.make_residual`
     (the one ``fit_binary`` gives lmfit) for every realisation, vectorised over the
-    realisations still iterating: one forward model and one central-difference
-    Jacobian per iteration for all of them together. Each step solves the damped
+    realisations still iterating: one forward model with its analytic Jacobian
+    (``binary_model.binary_observables_batch``) per iteration for all of them together. Each step solves the damped
     normal equations (J^T J + lambda diag(J^T J)) delta = -J^T r (Marquardt 1963,
     J. SIAM 11, 431); lambda is divided by 10 after a step that lowers the
     realisation's chi-square and multiplied by 10 otherwise. Parameters are clipped
@@ -536,47 +536,39 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
     model_kw = dict(bandwidth_m=obs.bandwidth, fibre_fwhm_mas=fibre_fwhm_mas,
                     baselines=obs.baselines, triangles=obs.triangles)
 
-    def model(x):
-        """Model observables (set, row, wave) of free-parameter sets x (set, free)."""
+    free_names = [PARAM_NAMES[k] for k in free]
+
+    def model(x, derivatives=()):
+        """Model observables (set, row, wave) of free-parameter sets x (set, free), and
+        with ``derivatives`` their analytic derivatives (set, free, row, wave)."""
         full = np.broadcast_to(values0, (len(x),) + values0.shape).copy()
         full[:, free] = x
-        return binary_observables_batch(obs.uvw, obs.wave, dict(zip(PARAM_NAMES, full.T)),
-                                        **model_kw)[:len(parts)]
+        out = binary_observables_batch(obs.uvw, obs.wave, dict(zip(PARAM_NAMES, full.T)),
+                                       derivatives=derivatives, **model_kw)
+        return out[:len(parts)], out[3:3 + len(parts)]
 
-    def jacobian(x, idx, base):                               # (set, free, point)
-        # Forward differences from the models at x (``base``), steps ~1e-7 relative
-        # (MINPACK's choice is sqrt(machine epsilon); More 1978).
-        h = 1e-7 * np.maximum(np.abs(x), 1.0)                 # (set, free)
-        n = len(idx)
-        shifted = (x[:, None, :] + np.einsum("ik,kl->ikl", h, np.eye(nf))).reshape(-1, nf)
-        out = []
-        for m, m0, s, ph in zip(model(shifted), base, scale, is_phase):
-            diff = m.reshape(n, nf, *m.shape[1:]) - m0[:, None]
-            diff = wrap(diff) if ph else diff                 # (set, free, row, wave)
-            out.append((-diff[:, :, None] / h[:, :, None, None, None]
-                        * s[idx][:, None]).reshape(n, nf, -1))
-        return np.concatenate(out, axis=2)
-
-    def residual(x, idx):                                     # (set, point), models
-        m = model(x)
-        return np.concatenate([
-            ((wrap(d[idx] - mk[:, None]) if ph else d[idx] - mk[:, None]) * s[idx])
-            .reshape(len(idx), -1) for d, s, mk, ph in zip(data, scale, m, is_phase)],
-            axis=1), m
+    def residual(x, idx):
+        """Residuals (set, point) and the Jacobian (set, free, point) at x."""
+        m, dm = model(x, free_names)
+        r = [(wrap(d[idx] - mk[:, None]) if ph else d[idx] - mk[:, None]) * s[idx]
+             for d, s, mk, ph in zip(data, scale, m, is_phase)]
+        jac = [-dk[:, :, None] * s[idx][:, None] for dk, s in zip(dm, scale)]
+        return (np.concatenate([rk.reshape(len(idx), -1) for rk in r], axis=1),
+                np.concatenate([jk.reshape(len(idx), nf, -1) for jk in jac], axis=2))
 
     everyone = np.arange(n_real)
     x = np.broadcast_to(values0[free], (n_real, nf)).copy()
-    r, m = residual(x, everyone)
+    r, jac = residual(x, everyone)
     chi2 = np.einsum("ij,ij->i", r, r)
     lam = np.full(n_real, 1e-3)
     n_iter = np.zeros(n_real, int)
     active = everyone
     for _ in range(max_iter):
-        jac = jacobian(x[active], active, [mk[active] for mk in m])
-        jtj = np.einsum("ikp,ilp->ikl", jac, jac)
-        grad = np.einsum("ikp,ip->ik", jac, r[active])
+        jtj = np.einsum("ikp,ilp->ikl", jac[active], jac[active])
+        grad = np.einsum("ikp,ip->ik", jac[active], r[active])
         diag = np.maximum(np.einsum("ikk->ik", jtj), 1e-300)[:, :, None] * np.eye(nf)
         gauss_newton = np.linalg.solve(jtj + 1e-12 * diag, grad[..., None])[..., 0]
+        # Converged: the undamped step would lower chi-square by less than tol_chi2.
         going = (np.einsum("ik,ik->i", grad, gauss_newton) >= tol_chi2) & (lam[active] < 1e12)
         active, jtj, grad, diag = active[going], jtj[going], grad[going], diag[going]
         if not active.size:
@@ -584,13 +576,12 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
         n_iter[active] += 1
         step = np.linalg.solve(jtj + lam[active, None, None] * diag, grad[..., None])[..., 0]
         x_new = np.clip(x[active] - step, lo, hi)
-        r_new, m_new = residual(x_new, active)
+        r_new, jac_new = residual(x_new, active)
         chi2_new = np.einsum("ij,ij->i", r_new, r_new)
         better = chi2_new < chi2[active]
-        x[active[better]], r[active[better]] = x_new[better], r_new[better]
-        chi2[active[better]] = chi2_new[better]
-        for mk, mk_new in zip(m, m_new):
-            mk[active[better]] = mk_new[better]
+        took = active[better]
+        x[took], r[took], jac[took], chi2[took] = (x_new[better], r_new[better],
+                                                   jac_new[better], chi2_new[better])
         lam[active] = np.where(better, lam[active] / 10, lam[active] * 10)
     full = np.broadcast_to(values0, (n_real,) + values0.shape).copy()
     full[:, free] = x

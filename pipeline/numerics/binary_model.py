@@ -20,6 +20,7 @@ of the OIFITS v2 T3 table (Duvert, Young & Hummel 2017, A&A 597, A8).
 from __future__ import annotations
 
 import numpy as np
+from scipy.special import jv
 
 from pipeline.skymodel import (MAS, binary_visibility, fibre_coupling, point_phasor,
                                smearing_envelope, uniform_disk_visibility)
@@ -117,8 +118,8 @@ PARAM_NAMES = ("dra", "ddec", "flux_ratio", "flux_slope", "primary_dra", "primar
 
 
 def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_fwhm_mas=None,
-                             baselines=BASELINES, triangles=TRIANGLES):
-    """:func:`binary_observables` for many parameter sets at once.
+                             baselines=BASELINES, triangles=TRIANGLES, derivatives=()):
+    """:func:`binary_observables` for many parameter sets at once, with derivatives.
 
     Parameters
     ----------
@@ -126,16 +127,24 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
     wave_m : ndarray, shape (n_wave,), metres
     params : mapping of :data:`PARAM_NAMES` to arrays of shape (n_set,) (or floats)
     bandwidth_m, fibre_fwhm_mas, baselines, triangles : as :func:`binary_observables`
+    derivatives : sequence of names in :data:`PARAM_NAMES`: also return the analytic
+        derivatives of the observables with respect to these parameters (per mas for
+        offsets and diameters)
 
     Returns
     -------
     vis2 : ndarray, shape (n_set, n_baseline, n_wave)
     t3phi : ndarray, shape (n_set, n_triangle, n_wave), radians
     visphi : ndarray, shape (n_set, n_baseline, n_wave), radians
+    d_vis2, d_t3phi, d_visphi : only with ``derivatives``; shapes (n_set, n_derivative,
+        n_row, n_wave)
 
     The model is that of ``pipeline.skymodel.binary_visibility``, composed here from the
     same factors (phasors, disks, smearing, fibre coupling) because its diameters must
-    be scalars.
+    be scalars. With V = (A1 + A2) / (f1 + f2), A_k = f_k P_k U_k E_k (flux with fibre
+    coupling, phasor, disk, smearing), every parameter's dV follows from d ln of the
+    factors; then d|V|^2 = 2 Re(conj(V) dV), d arg V = Im(dV / V), and the bispectrum's
+    d arg = Im(dB / B) (frame means taken first).
     """
     u, v = _uv(uvw_m)                                               # (time, baseline, 1)
     wave = np.asarray(wave_m, float)
@@ -146,27 +155,92 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
                                                                                   None]
     x1, y1 = par("primary_dra") * MAS, par("primary_ddec") * MAS
     x2, y2 = x1 + par("dra") * MAS, y1 + par("ddec") * MAS
-    f1 = np.ones_like(wave)
-    f2 = flux_ratio_law(wave, par("flux_ratio"), par("flux_slope"))
+    law = flux_ratio_law(wave, 1.0, par("flux_slope"))              # (set, 1, 1, wave)
+    f1, f2_unit = np.ones_like(wave), law
     if fibre_fwhm_mas is not None:
         f1 = f1 * fibre_coupling(x1, y1, wave, fibre_fwhm_mas * MAS)
-        f2 = f2 * fibre_coupling(x2, y2, wave, fibre_fwhm_mas * MAS)
-    v1 = point_phasor(u, v, wave, x1, y1)                           # (set, time, baseline, wave)
-    v2 = point_phasor(u, v, wave, x2, y2)
-    for name, x, y, vis in (("diameter1", x1, y1, v1), ("diameter2", x2, y2, v2)):
+        f2_unit = f2_unit * fibre_coupling(x2, y2, wave, fibre_fwhm_mas * MAS)
+    ratio = par("flux_ratio")
+    f2 = ratio * f2_unit
+    terms = []                                      # per star: A_k / f_k (P U E), d ln parts
+    for name, x, y in (("diameter1", x1, y1), ("diameter2", x2, y2)):
+        vis = point_phasor(u, v, wave, x, y)                        # (set, time, baseline, wave)
         d = par(name)
+        disk = None
         if np.any(d != 0):
-            vis *= uniform_disk_visibility(u, v, wave, d * MAS)
+            disk = uniform_disk_visibility(u, v, wave, d * MAS)
+            vis = vis * disk
         if bandwidth_m is not None:
-            vis *= smearing_envelope(u * x + v * y, wave, bandwidth_m)
-    vis = (f1 * v1 + f2 * v2) / (f1 + f2)
+            vis = vis * smearing_envelope(u * x + v * y, wave, bandwidth_m)
+        terms.append((vis, x, y, d, disk))
+    (p1, *_), (p2, *_) = terms
+    den = f1 + f2
+    vis = (f1 * p1 + f2 * p2) / den
     tri = _triangle_index(baselines, triangles)
-    bis = vis[..., tri[:, 0], :] * vis[..., tri[:, 1], :] * np.conj(vis[..., tri[:, 2], :])
-    if vis.shape[1] == 1:                                           # one (u, v) per baseline
-        vis, bis = vis[:, 0], bis[:, 0]
-        return vis.real ** 2 + vis.imag ** 2, np.angle(bis), np.angle(vis)
-    return (np.mean(vis.real ** 2 + vis.imag ** 2, axis=1), np.angle(np.mean(bis, axis=1)),
-            np.angle(np.mean(vis, axis=1)))
+
+    def bispectrum(a, b):       # sum of the three one-factor-replaced products if b is given
+        if b is None:
+            return a[..., tri[:, 0], :] * a[..., tri[:, 1], :] * np.conj(a[..., tri[:, 2], :])
+        return (b[..., tri[:, 0], :] * a[..., tri[:, 1], :] * np.conj(a[..., tri[:, 2], :])
+                + a[..., tri[:, 0], :] * b[..., tri[:, 1], :] * np.conj(a[..., tri[:, 2], :])
+                + a[..., tri[:, 0], :] * a[..., tri[:, 1], :] * np.conj(b[..., tri[:, 2], :]))
+    bis = bispectrum(vis, None)
+    vis_m, bis_m = vis.mean(1), bis.mean(1)
+    out = (np.mean(vis.real ** 2 + vis.imag ** 2, axis=1), np.angle(bis_m), np.angle(vis_m))
+    if not derivatives:
+        return out
+
+    # d ln of each star's term per unit offset (rad) along x and y
+    two_pi_i = -2j * np.pi / wave
+    ln2 = np.log(2)
+
+    def dln_position(x, y, axis_uv):
+        g = two_pi_i * axis_uv                                      # phasor
+        if bandwidth_m is not None:
+            dsig = np.asarray(bandwidth_m) / wave ** 2
+            g = g - (np.pi * dsig) ** 2 * (u * x + v * y) * axis_uv / (2 * ln2)
+        if fibre_fwhm_mas is not None:
+            fwhm = fibre_fwhm_mas * MAS * wave / REF_WAVE_M
+            coord = x if axis_uv is u else y
+            g = g - 8 * ln2 * coord / fwhm ** 2                     # coupling (real)
+            return g, -8 * ln2 * coord / fwhm ** 2
+        return g, 0.0
+    a1, a2 = f1 * p1, f2 * p2
+    d_out = []
+    for name in derivatives:
+        if name in ("dra", "ddec", "primary_dra", "primary_ddec"):
+            axis_uv = u if name in ("dra", "primary_dra") else v
+            g2, c2 = dln_position(x2, y2, axis_uv)
+            d_num, d_den = a2 * g2, f2 * c2
+            if name.startswith("primary"):
+                g1, c1 = dln_position(x1, y1, axis_uv)
+                d_num, d_den = d_num + a1 * g1, d_den + f1 * c1
+            d_num, d_den = d_num * MAS, d_den * MAS
+        elif name == "flux_ratio":
+            d_num, d_den = f2_unit * p2, f2_unit
+        elif name == "flux_slope":
+            ln_law = np.log(wave / REF_WAVE_M)
+            d_num, d_den = a2 * ln_law, f2 * ln_law
+        elif name in ("diameter1", "diameter2"):
+            p, x, y, d, _ = terms[int(name[-1]) - 1]
+            z = np.pi * d * MAS * np.hypot(u, v) / wave
+            with np.errstate(invalid="ignore", divide="ignore"):
+                dlog_disk = np.where(np.abs(z) < 1e-8, -z / 4,
+                                     -jv(2, z) / np.where(z == 0, 1, z)) * 2
+                disk = uniform_disk_visibility(u, v, wave, d * MAS)
+                ratio_dz = np.where(disk != 0, dlog_disk / np.where(disk != 0, disk, 1), 0.0)
+            # d U / d theta = dU/dz * z / theta = dU/dz * pi rho; ratio_dz = (dU/dz) / U
+            zf = np.pi * MAS * np.hypot(u, v) / wave
+            d_num = (a1 if name == "diameter1" else a2) * ratio_dz * zf
+            d_den = 0.0
+        else:
+            raise ValueError(f"unknown parameter {name!r}; known {PARAM_NAMES}")
+        d_vis = (d_num - vis * d_den) / den
+        d_v2 = np.mean(2 * (vis.real * d_vis.real + vis.imag * d_vis.imag), axis=1)
+        d_t3 = (bispectrum(vis, d_vis).mean(1) / bis_m).imag
+        d_ph = (d_vis.mean(1) / vis_m).imag
+        d_out.append((d_v2, d_t3, d_ph))
+    return out + tuple(np.stack(x, axis=1) for x in zip(*d_out))
 
 
 def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_mas,
