@@ -55,7 +55,7 @@ from pipeline.numerics.binary_model import (BASELINES, PARAM_NAMES, TRIANGLES,
                                             binary_observables_batch, flux_ratio_law, grid_chi2,
                                             make_residual, wrap)
 from pipeline.numerics.ellipse import ErrorEllipse, SepPA, correlation, error_ellipse, sep_pa
-from pipeline.skymodel import MAS, binary_visibility
+from pipeline.skymodel import MAS, fibre_coupling, point_phasor, smearing_envelope
 
 __all__ = ["FLAGS", "Observables", "BinaryFitResult", "fit_binary", "search_grid",
            "refit_batch", "params_to_json", "params_from_json"]
@@ -190,29 +190,44 @@ def _local_minima(chi2_map, n_max):
 
 def _primary_grid(obs, params, ch, *, step, radius, fibre_fwhm_mas):
     """Primary offset (mas) minimising the referenced-phase chi-square on a grid, the
-    companion's relative position and flux ratio held at ``params``."""
+    companion's relative position and flux ratio held at ``params``.
+
+    V = P1 (c1 E1 + f2 c2 E2 Pd) / (c1 + f2 c2) with P1 the primary's phasor, Pd the
+    companion's relative one, c the fibre couplings, E the smearing envelopes; only the
+    phase of V enters, and P1 = Px(x1) Py(y1) on the square grid, so the phasors are
+    computed per grid axis."""
     axis = np.arange(-np.ceil(radius / step), np.ceil(radius / step) + 1) * step
     xx, yy = np.meshgrid(axis, axis)
     keep = np.hypot(xx, yy) <= radius
-    x1, y1 = xx[keep], yy[keep]
+    iy_all, ix_all = np.nonzero(keep)
+    x1, y1 = axis[ix_all], axis[iy_all]
     w = np.where(np.isfinite(obs.visphi) & (obs.visphi_err > 0),
                  1 / np.where(obs.visphi_err > 0, obs.visphi_err, 1) ** 2, 0)[..., ch]
     z = (w * np.exp(1j * np.where(w > 0, obs.visphi[..., ch], 0))).sum(0)   # (baseline, wave)
     uvw = np.asarray(obs.uvw, float).reshape(-1, len(obs.baselines), 3).mean(0)
+    u, v = uvw[:, 0, None], uvw[:, 1, None]                                  # (baseline, 1)
     wave = np.asarray(obs.wave)[ch]
     bw = None if obs.bandwidth is None else np.asarray(obs.bandwidth)[ch]
     p = params.valuesdict()
+    dx, dy = p["dra"] * MAS, p["ddec"] * MAS
+    f2 = flux_ratio_law(wave, p["flux_ratio"], p["flux_slope"])
+    px = point_phasor(u, v, wave, axis[:, None, None] * MAS, 0.0)           # (axis, bl, wave)
+    py = point_phasor(u, v, wave, 0.0, axis[:, None, None] * MAS)
+    pd = point_phasor(u, v, wave, dx, dy)
+    fwhm = None if fibre_fwhm_mas is None else fibre_fwhm_mas * MAS
     chi2 = np.empty(x1.size)
-    chunk = max(1, 2_000_000 // z.size)
+    chunk = max(1, 500_000 // z.size)
     for s in range(0, x1.size, chunk):
         sl = slice(s, s + chunk)
-        vis = binary_visibility(
-            uvw[:, 0, None], uvw[:, 1, None], wave, dx_rad=p["dra"] * MAS,
-            dy_rad=p["ddec"] * MAS, flux_ratio=flux_ratio_law(wave, p["flux_ratio"],
-                                                              p["flux_slope"]),
-            x1_rad=x1[sl, None, None] * MAS, y1_rad=y1[sl, None, None] * MAS, bandwidth_m=bw,
-            fibre_fwhm_rad_at_2p2um=None if fibre_fwhm_mas is None else fibre_fwhm_mas * MAS)
-        cos_res = (vis.real * z.real + vis.imag * z.imag) / np.maximum(np.abs(vis), 1e-300)
+        xa, ya = x1[sl, None, None] * MAS, y1[sl, None, None] * MAS         # (pos, 1, 1)
+        c1 = 1.0 if fwhm is None else fibre_coupling(xa, ya, wave, fwhm)
+        c2 = f2 if fwhm is None else f2 * fibre_coupling(xa + dx, ya + dy, wave, fwhm)
+        if bw is not None:
+            c1 = c1 * smearing_envelope(u * xa + v * ya, wave, bw)
+            c2 = c2 * smearing_envelope(u * (xa + dx) + v * (ya + dy), wave, bw)
+        m = c1 + c2 * pd                                                    # (pos, bl, wave)
+        vis = px[ix_all[sl]] * py[iy_all[sl]] * m
+        cos_res = (vis.real * z.real + vis.imag * z.imag) / np.maximum(np.abs(m), 1e-300)
         chi2[sl] = -cos_res.sum((-1, -2))
     best = int(np.argmin(chi2))
     return float(x1[best]), float(y1[best])
@@ -247,7 +262,8 @@ def _params(dra, ddec, ratio, *, radius, ratio_max, fit_slope, has_phase, diamet
 
 def _refine(residual, start):
     import lmfit
-    return lmfit.minimize(residual, start, method="leastsq", scale_covar=False, nan_policy="raise")
+    return lmfit.minimize(residual, start, method="leastsq", scale_covar=False, nan_policy="raise",
+                          Dfun=getattr(residual, "jacobian", None))
 
 
 def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_mas: float,

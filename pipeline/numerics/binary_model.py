@@ -359,7 +359,9 @@ def make_residual(obs, *, fibre_fwhm_mas, vis2, t3phi, visphi, weight):
     function maps parameters (anything with ``valuesdict()``: dra, ddec, flux_ratio,
     flux_slope, primary_dra, primary_ddec, diameter1, diameter2; mas) to
     (data - model) / error over the
-    valid points, phases wrapped to (-pi, pi].
+    valid points, phases wrapped to (-pi, pi]. Its attribute ``jacobian`` maps the
+    same parameters to the analytic derivatives of those residuals, shape (n_point,
+    n_varying), columns in the order of the varying parameters (lmfit's ``Dfun``).
     """
     ok2 = np.isfinite(vis2) & np.isfinite(obs.vis2_err) & (obs.vis2_err > 0)
     okt = np.isfinite(t3phi) & np.isfinite(obs.t3phi_err) & (obs.t3phi_err > 0)
@@ -381,6 +383,20 @@ def make_residual(obs, *, fibre_fwhm_mas, vis2, t3phi, visphi, weight):
         if visphi is not None:
             parts.append((wrap(visphi - mp) / obs.visphi_err * sw)[okp])
         return np.concatenate(parts)
+
+    def jacobian(params):
+        p = params.valuesdict()
+        varying = [name for name, par in params.items() if par.vary]
+        _, _, _, d2, dt, dp = binary_observables_batch(
+            obs.uvw, obs.wave, {k: p.get(k, 0.0) for k in PARAM_NAMES}, derivatives=varying,
+            bandwidth_m=obs.bandwidth, fibre_fwhm_mas=fibre_fwhm_mas,
+            baselines=obs.baselines, triangles=obs.triangles)           # (1, var, row, wave)
+        parts = [(-d2[0][:, None] / obs.vis2_err * sw)[:, ok2],
+                 (-dt[0][:, None] / obs.t3phi_err * sw)[:, okt]]
+        if visphi is not None:
+            parts.append((-dp[0][:, None] / obs.visphi_err * sw)[:, okp])
+        return np.concatenate(parts, axis=1).T
+    residual.jacobian = jacobian
     return residual, int(ok2.sum() + okt.sum() + (okp.sum() if okp is not None else 0))
 
 
