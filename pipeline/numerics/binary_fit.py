@@ -496,19 +496,19 @@ def _bootstrap(obs, *, residual_kw, start, n_boot, mode, seed, names):
 
 
 def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, t3phi,
-                visphi=None, weight=None, max_iter: int = 300, tol_chi2: float = 1e-8):
+                visphi=None, weight=None, max_iter: int = 300, ftol: float = 1.5e-8):
     """Levenberg-Marquardt refits of many realisations at once, from one start.
 
     The least-squares problem of :func:`pipeline.numerics.binary_model.make_residual`
     (the one ``fit_binary`` gives lmfit) for every realisation, vectorised over the
     realisations still iterating: one forward model with its analytic Jacobian
-    (``binary_model.binary_observables_batch``) per iteration for all of them together. Each step solves the damped
-    normal equations (J^T J + lambda diag(J^T J)) delta = -J^T r (Marquardt 1963,
-    J. SIAM 11, 431); lambda is divided by 10 after a step that lowers the
-    realisation's chi-square and multiplied by 10 otherwise. Parameters are clipped
-    to ``start``'s bounds. A realisation stops when the undamped (Gauss-Newton) step
-    would lower its chi-square by less than ``tol_chi2`` (1e-8: a shift of ~1e-4 of
-    its error), or when lambda exceeds 1e12.
+    (``binary_model.binary_observables_batch``) per iteration for all of them
+    together. Each step solves the damped normal equations
+    (J^T J + lambda diag(J^T J)) delta = -J^T r (Marquardt 1963, J. SIAM 11, 431);
+    lambda follows the gain ratio of each step (Nielsen 1999, IMM-REP-1999-05).
+    Parameters are clipped to ``start``'s bounds. A realisation stops when the
+    undamped (Gauss-Newton) step would lower its chi-square by less than ``ftol``
+    times it (1.5e-8, lmfit's MINPACK default), or when lambda exceeds 1e12.
 
     Parameters
     ----------
@@ -520,7 +520,7 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
     visphi : ndarray, shape (n_real, n_pol, n_baseline, n_wave), radians, or None (not fitted)
     weight : ndarray, shape (n_real, n_wave), or None: each channel's multiplicity
         (its squared residual is multiplied by it)
-    max_iter, tol_chi2 : iteration limit and convergence threshold
+    max_iter, ftol : iteration limit and relative convergence threshold
 
     Returns
     -------
@@ -576,7 +576,7 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
     x = np.broadcast_to(values0[free], (n_real, nf)).copy()
     r, jac = residual(x, everyone)
     chi2 = np.einsum("ij,ij->i", r, r)
-    lam = np.full(n_real, 1e-3)
+    lam, nu = np.full(n_real, 1e-3), np.full(n_real, 2.0)
     n_iter = np.zeros(n_real, int)
     active = everyone
     for _ in range(max_iter):
@@ -584,8 +584,9 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
         grad = np.einsum("ikp,ip->ik", jac[active], r[active])
         diag = np.maximum(np.einsum("ikk->ik", jtj), 1e-300)[:, :, None] * np.eye(nf)
         gauss_newton = np.linalg.solve(jtj + 1e-12 * diag, grad[..., None])[..., 0]
-        # Converged: the undamped step would lower chi-square by less than tol_chi2.
-        going = (np.einsum("ik,ik->i", grad, gauss_newton) >= tol_chi2) & (lam[active] < 1e12)
+        # Converged: the undamped step would lower chi-square by less than ftol of it.
+        going = ((np.einsum("ik,ik->i", grad, gauss_newton) >= ftol * chi2[active])
+                 & (lam[active] < 1e12))
         active, jtj, grad, diag = active[going], jtj[going], grad[going], diag[going]
         if not active.size:
             break
@@ -595,10 +596,16 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
         r_new, jac_new = residual(x_new, active)
         chi2_new = np.einsum("ij,ij->i", r_new, r_new)
         better = chi2_new < chi2[active]
+        # Gain ratio: actual over predicted decrease of the linearised model.
+        predicted = np.einsum("ik,ik->i", step, grad + lam[active, None]
+                              * np.einsum("ikk->ik", diag) * step)
+        gain = (chi2[active] - chi2_new) / np.maximum(predicted, 1e-300)
         took = active[better]
         x[took], r[took], jac[took], chi2[took] = (x_new[better], r_new[better],
                                                    jac_new[better], chi2_new[better])
-        lam[active] = np.where(better, lam[active] / 10, lam[active] * 10)
+        lam[active] = np.where(better, lam[active] * np.maximum(1 / 3, 1 - (2 * gain - 1) ** 3),
+                               lam[active] * nu[active])
+        nu[active] = np.where(better, 2.0, 2 * nu[active])
     full = np.broadcast_to(values0, (n_real,) + values0.shape).copy()
     full[:, free] = x
     return full, chi2, n_iter

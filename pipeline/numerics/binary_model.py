@@ -184,9 +184,12 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
         return (b[..., tri[:, 0], :] * a[..., tri[:, 1], :] * np.conj(a[..., tri[:, 2], :])
                 + a[..., tri[:, 0], :] * b[..., tri[:, 1], :] * np.conj(a[..., tri[:, 2], :])
                 + a[..., tri[:, 0], :] * a[..., tri[:, 1], :] * np.conj(b[..., tri[:, 2], :]))
+
+    def frame_mean(x):                              # (set, time, ...) -> (set, ...)
+        return x[:, 0] if x.shape[1] == 1 else x.mean(1)
     bis = bispectrum(vis, None)
-    vis_m, bis_m = vis.mean(1), bis.mean(1)
-    out = (np.mean(vis.real ** 2 + vis.imag ** 2, axis=1), np.angle(bis_m), np.angle(vis_m))
+    vis_m, bis_m = frame_mean(vis), frame_mean(bis)
+    out = (frame_mean(vis.real ** 2 + vis.imag ** 2), np.angle(bis_m), np.angle(vis_m))
     if not derivatives:
         return out
 
@@ -236,9 +239,9 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
         else:
             raise ValueError(f"unknown parameter {name!r}; known {PARAM_NAMES}")
         d_vis = (d_num - vis * d_den) / den
-        d_v2 = np.mean(2 * (vis.real * d_vis.real + vis.imag * d_vis.imag), axis=1)
-        d_t3 = (bispectrum(vis, d_vis).mean(1) / bis_m).imag
-        d_ph = (d_vis.mean(1) / vis_m).imag
+        d_v2 = frame_mean(2 * (vis.real * d_vis.real + vis.imag * d_vis.imag))
+        d_t3 = (frame_mean(bispectrum(vis, d_vis)) / bis_m).imag
+        d_ph = (frame_mean(d_vis) / vis_m).imag
         d_out.append((d_v2, d_t3, d_ph))
     return out + tuple(np.stack(x, axis=1) for x in zip(*d_out))
 
