@@ -4,9 +4,10 @@
 Used as a parametric bootstrap of the binary fit when the calibrated product holds
 the frame-bootstrap covariance between wavelengths but not the realisations
 themselves. A realisation is value + L z with z standard normal and L L^T the
-covariance (L from the eigen-decomposition, which tolerates the semi-definite
-covariances a finite bootstrap gives; e.g. Gentle 2003, Random Number Generation
-and Monte Carlo Methods, section 5.3).
+covariance: L is the Cholesky factor when every block is positive definite, else
+from the eigen-decomposition, which tolerates the semi-definite covariances a
+finite bootstrap can give (e.g. Gentle 2003, Random Number Generation and Monte
+Carlo Methods, section 5.3).
 """
 
 from __future__ import annotations
@@ -33,9 +34,11 @@ def draw_correlated(value, err, cov=None, *, n: int, seed: int = 0):
 
     Notes
     -----
-    Cholesky factor of each covariance block after clipping negative eigenvalues
-    (a bootstrap covariance is only positive semi-definite), NaN rows treated as
-    independent with the diagonal error.
+    Cholesky factors of the covariance blocks (a few times cheaper than an
+    eigen-decomposition); if any block is not positive definite (a bootstrap covariance
+    is only positive semi-definite), the square root from the eigen-decomposition with
+    negative eigenvalues clipped. NaN rows are treated as independent with the
+    diagonal error.
     """
     rng = np.random.default_rng(seed)
     value, err = np.asarray(value, float), np.asarray(err, float)
@@ -46,6 +49,10 @@ def draw_correlated(value, err, cov=None, *, n: int, seed: int = 0):
     ok = np.isfinite(c).all(-1) & np.isfinite(c).all(-2)
     c = np.where(ok[..., :, None] & ok[..., None, :], c, 0.0)
     c = c + np.eye(c.shape[-1]) * np.where(ok, 0.0, np.nan_to_num(err) ** 2)[..., None]
-    vals, vecs = np.linalg.eigh(0.5 * (c + np.swapaxes(c, -1, -2)))
-    root = vecs * np.sqrt(np.clip(vals, 0, None))[..., None, :]
+    c = 0.5 * (c + np.swapaxes(c, -1, -2))
+    try:
+        root = np.linalg.cholesky(c)
+    except np.linalg.LinAlgError:
+        vals, vecs = np.linalg.eigh(c)
+        root = vecs * np.sqrt(np.clip(vals, 0, None))[..., None, :]
     return value + np.einsum("...ij,n...j->n...i", root, z)
