@@ -389,8 +389,8 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
                 if ia is not None and ib is not None:
                     cov_fit_full[a, b] = best.covar[ia, ib] * scale
 
-    boots = _bootstrap(obs, residual_kw=dict(fibre_fwhm_mas=fibre_fwhm_mas), start=bp,
-                       n_boot=n_boot, mode=bootstrap, seed=seed, names=names)
+    boots = _bootstrap(obs, refit_kw=dict(fibre_fwhm_mas=fibre_fwhm_mas, max_step_mas=step),
+                       start=bp, n_boot=n_boot, mode=bootstrap, seed=seed, names=names)
     estimates = {"fit": cov_fit_full}
     estimates.update({k: np.cov(v, rowvar=False) for k, v in boots.items() if len(v) > 2})
     source, cov_full = _largest(estimates, slice(0, 2))
@@ -462,7 +462,7 @@ def _largest(estimates, block):
     return name, cov
 
 
-def _bootstrap(obs, *, residual_kw, start, n_boot, mode, seed, names):
+def _bootstrap(obs, *, refit_kw, start, n_boot, mode, seed, names):
     """Refits of bootstrap realisations from the best fit: {kind: samples (n, n_names)}.
 
     "auto": the supplied realisations (``obs.boot_kind``) when present, and always a
@@ -481,7 +481,7 @@ def _bootstrap(obs, *, residual_kw, start, n_boot, mode, seed, names):
             visphi = (obs.visphi_boot[:n] if obs.visphi_boot is not None
                       else np.broadcast_to(obs.visphi, (n,) + np.shape(obs.visphi)))
         values, _, _ = refit_batch(obs, start, vis2=obs.vis2_boot[:n], t3phi=obs.t3phi_boot[:n],
-                                visphi=visphi, **residual_kw)
+                                visphi=visphi, **refit_kw)
         out[obs.boot_kind] = values[:, columns]
     rng = np.random.default_rng(seed)
     weight = np.array([np.bincount(rng.integers(0, nw, nw), minlength=nw)
@@ -490,13 +490,14 @@ def _bootstrap(obs, *, residual_kw, start, n_boot, mode, seed, names):
     def repeat(x):
         return None if x is None else np.broadcast_to(x, (n_boot,) + np.shape(x))
     values, _, _ = refit_batch(obs, start, vis2=repeat(obs.vis2), t3phi=repeat(obs.t3phi),
-                            visphi=repeat(obs.visphi), weight=weight, **residual_kw)
+                            visphi=repeat(obs.visphi), weight=weight, **refit_kw)
     out["channels"] = values[:, columns]
     return out
 
 
 def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, t3phi,
-                visphi=None, weight=None, max_iter: int = 300, ftol: float = 1.5e-8):
+                visphi=None, weight=None, max_step_mas: float | None = None,
+                max_iter: int = 300, ftol: float = 1.5e-8):
     """Levenberg-Marquardt refits of many realisations at once, from one start.
 
     The least-squares problem of :func:`pipeline.numerics.binary_model.make_residual`
@@ -506,7 +507,11 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
     together. Each step solves the damped normal equations
     (J^T J + lambda diag(J^T J)) delta = -J^T r (Marquardt 1963, J. SIAM 11, 431);
     lambda follows the gain ratio of each step (Nielsen 1999, IMM-REP-1999-05).
-    Parameters are clipped to ``start``'s bounds. A realisation stops when the
+    Parameters are clipped to ``start``'s bounds, and a step that would move a position
+    (companion or primary) by more than ``max_step_mas`` is shortened to it: where the
+    position is barely constrained (flux ratio near zero) an undamped step could jump
+    to another fringe's minimum, which a refit from the best fit must not. A
+    realisation stops when the
     undamped (Gauss-Newton) step would lower its chi-square by less than ``ftol``
     times it (1.5e-8, lmfit's MINPACK default), or when lambda exceeds 1e12.
 
@@ -520,6 +525,8 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
     visphi : ndarray, shape (n_real, n_pol, n_baseline, n_wave), radians, or None (not fitted)
     weight : ndarray, shape (n_real, n_wave), or None: each channel's multiplicity
         (its squared residual is multiplied by it)
+    max_step_mas : float or None, longest move of a position per iteration, mas
+        (``fit_binary`` gives its grid step, a quarter of the smallest fringe spacing)
     max_iter, ftol : iteration limit and relative convergence threshold
 
     Returns
@@ -553,6 +560,8 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
                     baselines=obs.baselines, triangles=obs.triangles)
 
     free_names = [PARAM_NAMES[k] for k in free]
+    is_position = np.array([n in ("dra", "ddec", "primary_dra", "primary_ddec")
+                            for n in free_names])
 
     def model(x, derivatives=()):
         """Model observables (set, row, wave) of free-parameter sets x (set, free), and
@@ -592,6 +601,9 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
             break
         n_iter[active] += 1
         step = np.linalg.solve(jtj + lam[active, None, None] * diag, grad[..., None])[..., 0]
+        if max_step_mas is not None and is_position.any():
+            longest = np.abs(step[:, is_position]).max(1)
+            step = step * np.minimum(1.0, max_step_mas / np.maximum(longest, 1e-300))[:, None]
         x_new = np.clip(x[active] - step, lo, hi)
         r_new, jac_new = residual(x_new, active)
         chi2_new = np.einsum("ij,ij->i", r_new, r_new)
