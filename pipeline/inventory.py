@@ -229,8 +229,8 @@ class Inventory:
         for setup, pol in sorted({(r.setup, r.polmode) for r in self.records}):
             lines.append(f"\nSet-up {setup}, polarisation {pol}:")
             recs = self.select(setup=setup, polmode=pol)
-            for kind in ("dark", "flat", "lamp-beam", "lamp-scan", "sky", "calibrator",
-                         "science"):
+            for kind in ("dark", "flat", "pixel-flat", "lamp-beam", "lamp-scan", "sky",
+                         "calibrator", "science"):
                 ks = [r for r in recs if r.kind == kind]
                 if ks:
                     dits = sorted({r.dit for r in ks})

@@ -20,7 +20,8 @@ import numpy as np
 from .errors import BadInput, MissingCalibration
 from .numerics import combiner_model as cm
 from .numerics.extraction import optimal_extract, resample_to_grid
-from .numerics.traces import combine_valid, find_traces, pixel_response, trace_profiles
+from .numerics.traces import (combine_valid, detector_response, find_traces, pixel_response,
+                              trace_profiles)
 from .numerics.wavelength import (common_grid, fit_dispersion_law, fit_fringe_scan,
                                   fringe_phasor)
 from .stage import Array
@@ -57,13 +58,8 @@ def _nominal_trace_y(setup, polmode, n_out):
 
 # -- flat -----------------------------------------------------------------------------------
 
-def flat_products(raws, dark, *, instrument, setup_name, polmode, frames_per_chunk=16,
-                  centre_deg=2, sigma_deg=2, spectrum_deg=3, max_saturated=0.001,
-                  response_range=(0.5, 1.5)) -> dict:
-    """Traces, cross-profiles, pixel response and bad-pixel mask from lamp flats."""
-    check_raw(raws, kind="flat", setup=setup_name, polmode=polmode)
-    det = instrument.detectors["science"]
-    setup = instrument.setup(setup_name)
+def _mean_frame(raws, dark, det, frames_per_chunk):
+    """Mean dark-subtracted frame (e-), frame count and saturated-pixel map of exposures."""
     master = np.asarray(dark["master"], float)
     total, n, sat = 0.0, 0, np.zeros(master.shape, bool)
     for raw in raws:
@@ -74,23 +70,57 @@ def flat_products(raws, dark, *, instrument, setup_name, polmode, frames_per_chu
             sat |= (pix >= det.saturation_adu).any(axis=0)
             total = total + ((pix - master) * det.gain_e_per_adu).sum(axis=0)
             n += pix.shape[0]
-    mean = total / n
+    return total / n, n, sat
+
+
+def flat_products(raws, dark, *, instrument, setup_name, polmode, frames_per_chunk=16,
+                  centre_deg=2, sigma_deg=2, spectrum_deg=3, max_saturated=0.001,
+                  response_range=(0.5, 1.5), pixel_flats=(), pixel_dark=None) -> dict:
+    """Traces, cross-profiles, pixel response and bad-pixel mask from lamp flats.
+
+    With detector flats (``pixel_flats``, dark-subtracted with ``pixel_dark``, default
+    ``dark``) the pixel response is measured directly and the trace flat is divided by
+    it first, so each trace's lamp spectrum needs no smoothing along x and its
+    throughput keeps none of its pixels' response. Without them, the lamp spectrum is
+    smoothed by a polynomial of degree ``spectrum_deg`` and the smooth part of a
+    trace's column responses stays in its throughput (a lamp flat cannot separate them)."""
+    check_raw(raws, kind="flat", setup=setup_name, polmode=polmode)
+    det = instrument.detectors["science"]
+    setup = instrument.setup(setup_name)
+    mean, n, sat = _mean_frame(raws, dark, det, frames_per_chunk)
     valid0 = np.asarray(dark["valid"], bool) & ~sat & np.isfinite(mean)
     nominal = _nominal_trace_y(setup, polmode, instrument.combiner.n_output)
     rn = float(np.nanmedian(np.asarray(dark["read_noise"], float))) * det.gain_e_per_adu
-    rows = np.arange(master.shape[0])[:, None]
+    rows = np.arange(mean.shape[0])[:, None]
     core = (np.abs(rows - nominal[None, :]) < 3 * setup.trace_sigma_px).any(1)[:, None]
     frac = (sat & core).sum() / max(core.sum() * sat.shape[1], 1)
     if frac > max_saturated:
         raise BadInput(raws[0].path, f"{100 * frac:.2f}% of the trace pixels are saturated in "
                                      "the flat; take flats with a shorter DIT")
+    det_response = None
+    if pixel_flats:
+        check_raw(pixel_flats, kind="pixel-flat", setup=setup_name, polmode=polmode)
+        pmean, _, psat = _mean_frame(pixel_flats, pixel_dark or dark, det, frames_per_chunk)
+        if psat.mean() > max_saturated:
+            raise BadInput(pixel_flats[0].path, f"{100 * psat.mean():.2f}% of the pixels are "
+                                                "saturated in the detector flat")
+        det_response, _ = detector_response(
+            np.where(np.isfinite(pmean), pmean, 0.0),
+            valid=np.asarray(dark["valid"], bool) & ~psat & np.isfinite(pmean))
+        lo, hi = response_range
+        usable = np.isfinite(det_response) & (det_response > lo) & (det_response < hi)
+        valid0 &= usable
+        mean = np.where(usable, mean / np.where(usable, det_response, 1.0), 0.0)
     fit = find_traces(np.where(valid0, mean, 0.0), nominal, valid=valid0,
                       nominal_sigma=setup.trace_sigma_px, centre_deg=centre_deg,
                       sigma_deg=sigma_deg, read_noise=rn / np.sqrt(n))
+    smooth = None if pixel_flats else min(spectrum_deg, setup.n_x - 2)
     response, lamp = pixel_response(np.where(valid0, mean, 0.0), fit.trace_y, fit.profile_sigma,
-                                    valid=valid0, smooth_deg=min(spectrum_deg, setup.n_x - 2))
+                                    valid=valid0, smooth_deg=smooth)
+    if det_response is not None:
+        response = response * np.where(np.isfinite(det_response), det_response, 1.0)
     valid = combine_valid(dark["valid"], response, flat_saturated=sat,
-                          response_range=response_range)
+                          response_range=response_range) & valid0
     tr, yx = ("trace", "x"), ("y", "x")
     return {"trace_y": Array(fit.trace_y, tr, "px", "trace centre, smooth law"),
             "profile_sigma": Array(fit.profile_sigma, tr, "px",
@@ -104,7 +134,9 @@ def flat_products(raws, dark, *, instrument, setup_name, polmode, frames_per_chu
             "centre_coeffs": Array(fit.centre_coeffs, ("trace", "coef"), "px",
                                    "polynomial in (x - x_ref) / x_scale, lowest order first"),
             "x_ref": fit.x_ref, "x_scale": fit.x_scale, "n_frame": n,
-            "n_invalid": int((~valid).sum()), "setup": setup_name, "polmode": polmode}
+            "n_invalid": int((~valid).sum()), "setup": setup_name, "polmode": polmode,
+            "response_source": ("detector flat x trace-flat profile residual" if pixel_flats else
+                                "trace flat (lamp spectrum smoothed along x)")}
 
 
 # -- extraction of lamp exposures ----------------------------------------------------------

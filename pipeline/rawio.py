@@ -24,7 +24,8 @@ from .errors import BadInput
 
 __all__ = ["RawExposure", "FRAME_KINDS", "ON_SKY_KINDS", "REQUIRED"]
 
-FRAME_KINDS = ("dark", "flat", "lamp-beam", "lamp-scan", "sky", "calibrator", "science")
+FRAME_KINDS = ("dark", "flat", "pixel-flat", "lamp-beam", "lamp-scan", "sky", "calibrator",
+               "science")
 ON_SKY_KINDS = ("sky", "calibrator", "science")
 
 # Required primary keywords and their types, per frame kind (docs/raw_format.md).
@@ -34,7 +35,7 @@ _COMMON = {"DATE-OBS": str, "MJD-OBS": float, "EXPTIME": float, "OBJECT": str,
 _ON_SKY = {"RA": float, "DEC": float, "FTOBJECT": str, "FTRA": float, "FTDEC": float,
            **{f"STATION{i}": str for i in range(1, 5)}}
 REQUIRED = {
-    "dark": _COMMON, "flat": _COMMON, "lamp-beam": _COMMON,
+    "dark": _COMMON, "flat": _COMMON, "pixel-flat": _COMMON, "lamp-beam": _COMMON,
     "lamp-scan": {**_COMMON, "SCANRATE": float},
     "sky": {**_COMMON, **_ON_SKY},
     "science": {**_COMMON, **_ON_SKY},

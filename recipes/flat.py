@@ -1,6 +1,7 @@
 # SPDX-License-Identifier: BSD-3-Clause
 """Stage ``flat``: trace centres and cross-profiles, pixel response and bad-pixel mask
-of the science detector, per set-up and polarisation mode, from lamp flats."""
+of the science detector, per set-up and polarisation mode, from lamp flats and, when
+the night has them, detector flats (``pixel-flat``: the detector lit without traces)."""
 
 from __future__ import annotations
 
@@ -46,9 +47,15 @@ def plan(inventory: Inventory, params: FlatParams, upstream) -> list[Unit]:
         recs = inventory.select("flat", setup, polmode)
         if not recs:
             continue
+        pixel = inventory.select("pixel-flat", setup, polmode)
         needs, problem = needs_dark(inventory, recs)
-        units.append(Unit(label=sci_channel(setup, polmode), raw=tuple(r.path for r in recs),
+        if pixel:
+            pneeds, pproblem = needs_dark(inventory, pixel, "pixel_dark")
+            needs, problem = {**needs, **pneeds}, problem or pproblem
+        units.append(Unit(label=sci_channel(setup, polmode),
+                          raw=tuple(r.path for r in recs) + tuple(r.path for r in pixel),
                           needs=needs, meta={"setup": setup, "polmode": polmode,
+                                             "n_flat": len(recs),
                                              "problem": list(problem or ())}))
     return units
 
@@ -57,7 +64,10 @@ def run(inputs, params: FlatParams) -> dict:
     meta = inputs.unit.meta
     if meta["problem"]:
         raise MissingCalibration(*meta["problem"])
-    return flat_products(inputs.raw, inputs.products["dark"], instrument=inputs.instrument,
+    n_flat = meta["n_flat"]
+    return flat_products(inputs.raw[:n_flat], inputs.products["dark"],
+                         pixel_flats=inputs.raw[n_flat:],
+                         pixel_dark=inputs.products.get("pixel_dark"), instrument=inputs.instrument,
                          setup_name=meta["setup"], polmode=meta["polmode"],
                          frames_per_chunk=params.frames_per_chunk,
                          centre_deg=params.centre_deg, sigma_deg=params.sigma_deg,
@@ -65,6 +75,6 @@ def run(inputs, params: FlatParams) -> dict:
                          response_range=(params.response_low, params.response_high))
 
 
-STAGE = Stage(name="flat", version="2", params=FlatParams, after=("dark",),
+STAGE = Stage(name="flat", version="3", params=FlatParams, after=("dark",),
               granularity="setup", plan=plan, run=run,
               doc="trace centres and profiles, pixel response, bad-pixel mask per set-up")

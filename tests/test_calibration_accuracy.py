@@ -169,6 +169,18 @@ def test_bad_calibration_frames_are_named(cal, tmp_path):
         flat_products([RawExposure(bad)], dark_view, instrument=inst, setup_name="low",
                       polmode="joint")
     assert err.value.path == str(bad)
+    # a saturated detector flat (a flat relabelled as one, then saturated) is named
+    pix = tmp_path / flats[0].name.replace("_flat_", "_pixel-flat_")
+    with fits.open(flats[0]) as hdul:
+        hdul[0].header["FRAMEKND"] = "pixel-flat"
+        data = hdul["SCI_PIX"].data.astype(np.int64)
+        data[:, 10:40, :] = 65535                       # 14% of the pixels
+        hdul["SCI_PIX"].data = data.astype(np.uint16)
+        hdul.writeto(pix)
+    with pytest.raises(BadInput, match="detector flat") as err:
+        flat_products([RawExposure(flats[0])], dark_view, instrument=inst, setup_name="low",
+                      polmode="joint", pixel_flats=[RawExposure(pix)])
+    assert err.value.path == str(pix)
 
 
 def test_calibration_truth_command(cal, tmp_path, capsys):

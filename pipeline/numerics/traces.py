@@ -24,7 +24,7 @@ from numpy.polynomial import polynomial as npoly
 from scipy.special import erf
 
 __all__ = ["TraceFit", "trace_profiles", "find_traces", "fit_amplitudes", "pixel_response",
-           "combine_valid"]
+           "detector_response", "combine_valid"]
 
 _SQRT2 = np.sqrt(2.0)
 _INV_SQRT_2PI = 1.0 / np.sqrt(2.0 * np.pi)
@@ -452,6 +452,47 @@ def pixel_response(flat, trace_y, profile_sigma, *, valid=None, min_fraction: fl
     response = np.ones_like(image)
     np.divide(image, model, out=response, where=lit)
     return response, amp
+
+
+def detector_response(image, *, valid=None, deg: int = 2, clip: float = 5.0, n_iter: int = 4):
+    """Pixel response from a detector flat (the detector lit directly, no traces).
+
+    The illumination is smooth: a 2-D polynomial of total degree ``deg`` in scaled
+    (y, x), fitted by least squares with iterative ``clip``-sigma rejection (hot,
+    dead and cosmic-hit pixels), divides the image; what is left is each pixel's
+    response, 1 on average.
+
+    Parameters
+    ----------
+    image : array_like, shape (n_y, n_x), dark-subtracted mean detector flat
+    valid : array_like of bool, shape (n_y, n_x), optional
+    deg : int >= 0; clip : float > 0; n_iter : int >= 1
+
+    Returns
+    -------
+    response : ndarray (n_y, n_x), NaN where ``valid`` is False
+    illumination : ndarray (n_y, n_x), the fitted smooth illumination
+    """
+    image, valid = _check_image(image, valid, "detector flat")
+    n_y, n_x = image.shape
+    yy, xx = np.meshgrid(np.linspace(-1, 1, n_y), np.linspace(-1, 1, n_x), indexing="ij")
+    terms = [yy ** i * xx ** j for i in range(deg + 1) for j in range(deg + 1 - i)]
+    design = np.stack([t.ravel() for t in terms], axis=1)               # (pixel, term)
+    z = image.ravel()
+    use = valid.ravel().copy()
+    for _ in range(max(n_iter, 1)):
+        coef = np.linalg.lstsq(design[use], z[use], rcond=None)[0]
+        model = design @ coef
+        rel = z / np.where(model > 0, model, np.nan) - 1
+        scatter = 1.4826 * np.nanmedian(np.abs(rel[use] - np.nanmedian(rel[use])))
+        new = valid.ravel() & (np.abs(rel) <= clip * max(scatter, 1e-12))
+        if np.array_equal(new, use):
+            break
+        use = new
+    illum = model.reshape(n_y, n_x)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        response = np.where(valid & (illum > 0), image / illum, np.nan)
+    return response, illum
 
 
 def combine_valid(dark_valid, response, *, flat_saturated=None, response_range=(0.5, 1.5)):

@@ -229,6 +229,29 @@ class LampLight:
         return detected(ft, fi, fj, coh)
 
 
+class PixelFlatLight:
+    """Detector flat: the science detector lit directly and nearly uniformly (an internal
+    lamp through a diffuser, not through the combiner), so every pixel's response is
+    seen without the traces; a gentle linear gradient, ``level_e`` photo-electrons per
+    pixel and frame at the centre. No light on the fringe tracker."""
+    def __init__(self, w: World, level_e: float, shape: tuple):
+        n_y, n_x = shape
+        gy = (np.arange(n_y) + 0.5) / n_y - 0.5
+        gx = (np.arange(n_x) + 0.5) / n_x - 0.5
+        self.illumination = level_e * (1 + 0.04 * gy[:, None] + 0.03 * gx[None, :])
+        self.shape = w.ft.eff_wave.shape
+        self.metrology, self.rate = None, 0.0
+        self.truth = {"pixel_flat_e": float(level_e),
+                      "illumination": "level_e * (1 + 0.04 (y/n_y - 1/2) + 0.03 (x/n_x - 1/2))"
+                                      ", pixel centres"}
+
+    def image(self, f0, f1):
+        return np.broadcast_to(self.illumination, (f1 - f0,) + self.illumination.shape)
+
+    def ft(self, n0, n1):
+        return np.zeros((1,) + self.shape)
+
+
 class DarkLight:
     """No light on either channel."""
     def __init__(self, w: World):

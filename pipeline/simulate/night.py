@@ -20,7 +20,7 @@ from ..instrument import load_instrument
 from .combine import detected
 from .detector import read_out
 from .header import ft_pointing, primary_cards
-from .light import DarkLight, LampLight, OnSkyLight, timing
+from .light import DarkLight, LampLight, OnSkyLight, PixelFlatLight, timing
 from .plan import Planned, plan_night
 from .scenario import load_scenario
 from .sky import field_components
@@ -49,6 +49,9 @@ def _simulate_exposure(w: World, p: Planned, night: Path, seed: int) -> dict:
         light = OnSkyLight(w, ch, e.kind, p.start, tg, ft_pos, tim, rng)
     elif e.kind == "dark":
         light = DarkLight(w)
+    elif e.kind == "pixel-flat":
+        light = PixelFlatLight(w, float(sc.calibration[e.setup].get("pixel_flat_e", 2.0e4)),
+                               (inst.detectors["science"].n_y, ch.n_pix))
     else:
         step = sc.calibration[e.setup]["scan_step_um"] * 1e-6
         light = LampLight(w, ch, e.kind, e.lamp_beam, step, tim, rng)
@@ -73,9 +76,12 @@ def _simulate_exposure(w: World, p: Planned, night: Path, seed: int) -> dict:
     def chunks():
         for f0 in range(0, e.nframe, chunk):
             f1 = min(e.nframe, f0 + chunk)
-            counts = detected(ch, *light.science(f0, f1))                     # (f, trace, x)
-            counts = np.broadcast_to(counts, (f1 - f0,) + counts.shape[1:])
-            img = np.einsum("ftx,tyx->fyx", counts, prof)
+            if isinstance(light, PixelFlatLight):
+                img = light.image(f0, f1)
+            else:
+                counts = detected(ch, *light.science(f0, f1))                 # (f, trace, x)
+                counts = np.broadcast_to(counts, (f1 - f0,) + counts.shape[1:])
+                img = np.einsum("ftx,tyx->fyx", counts, prof)
             raw, hits = read_out(w.sci_det, img, e.dit, rng, window=window)
             cosmics.extend([[h[0] + f0, h[1], h[2]] for h in hits])
             yield raw

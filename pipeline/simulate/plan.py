@@ -23,7 +23,7 @@ class Planned:
 
 
 def plan_night(sc: Scenario, inst: Instrument) -> list[Planned]:
-    """Afternoon calibrations (darks for every DIT used, flat, four single-beam lamp
+    """Afternoon calibrations (darks for every DIT used, flat, optional pixel flat, four single-beam lamp
     exposures and a delay scan per set-up and polarisation mode used on sky) followed by
     the on-sky sequence. Times: back to back with the requested gaps."""
     cal = sc.calibration
@@ -53,6 +53,9 @@ def plan_night(sc: Scenario, inst: Instrument) -> list[Planned]:
     for setup, polmode in modes:
         c = cal[setup]
         calib.append(Exposure("flat", setup, polmode, c["lamp_dit"], c["flat_nframe"], gap_s=20.0))
+        if c.get("pixel_flat_nframe", 0) > 0:
+            calib.append(Exposure("pixel-flat", setup, polmode, c["lamp_dit"],
+                                  c["pixel_flat_nframe"], gap_s=20.0))
         for beam in range(1, 5):
             calib.append(Exposure("lamp-beam", setup, polmode, c["lamp_dit"], c["beam_nframe"],
                                   lamp_beam=beam, gap_s=20.0))

@@ -25,7 +25,7 @@ __all__ = ["Scenario", "Target", "Exposure", "load_scenario", "SCENARIO_DIR"]
 SCENARIO_DIR = CALIB_DIR / "scenarios"
 
 ON_SKY = ("sky", "calibrator", "science")
-KINDS = ("dark", "flat", "lamp-beam", "lamp-scan") + ON_SKY
+KINDS = ("dark", "flat", "pixel-flat", "lamp-beam", "lamp-scan") + ON_SKY
 
 
 @dataclass(frozen=True)
@@ -209,6 +209,9 @@ def load_scenario(scenario: str | os.PathLike = "tiny") -> Scenario:
                     "scan_step_um"):
             _req(c, key, float if key in ("lamp_dit", "scan_dit", "scan_step_um") else int,
                  src, f"calibration.{setup}.")
+        for key, typ in (("pixel_flat_nframe", int), ("pixel_flat_e", float)):   # optional
+            if key in c:
+                _req(c, key, typ, src, f"calibration.{setup}.")
     return Scenario(
         name=_req(d, "name", str, src, ""), source=src, description=d.get("description", ""),
         start_utc=_req(d, "start_utc", str, src, ""),

@@ -151,3 +151,26 @@ def test_lamp_amplitude_is_window_flux_despite_a_wrong_width(rng, spacing):
         np.testing.assert_allclose(lamp / amps, 1.0, atol=0.001)
     else:                # overlapping (split polarisation): the least-squares amplitude
         np.testing.assert_allclose(lamp, biased, rtol=1e-12)
+
+
+def test_detector_response_from_a_detector_flat(rng):
+    """A detector lit smoothly (quadratic illumination) times a 2% pixel response, with
+    photon noise and a few hot pixels: the response comes back to the photon noise
+    (1 / sqrt(N) per pixel, Poisson statistics), the hot pixels do not bend the fit."""
+    from pipeline.numerics.traces import detector_response
+    n_y, n_x = 80, 120
+    yy, xx = np.meshgrid(np.linspace(-1, 1, n_y), np.linspace(-1, 1, n_x), indexing="ij")
+    illum = 4e5 * (1 + 0.05 * yy - 0.03 * xx + 0.02 * xx * yy - 0.01 * yy ** 2)
+    resp = 1 + 0.02 * rng.standard_normal((n_y, n_x))
+    img = rng.poisson(illum * resp).astype(float)
+    hot = rng.choice(n_y * n_x, 40, replace=False)
+    img.reshape(-1)[hot] += 5e5
+    est, fitted = detector_response(img)
+    good = np.ones(img.shape, bool)
+    good.reshape(-1)[hot] = False
+    np.testing.assert_allclose(fitted, illum * resp.mean(), rtol=2e-3)
+    rel = est[good] / resp[good] * resp.mean() - 1
+    assert np.std(rel) < 1.3 / np.sqrt(4e5)                  # photon noise ~0.16%
+    valid = np.ones(img.shape, bool)
+    valid[5, 7] = False
+    assert np.isnan(detector_response(img, valid=valid)[0][5, 7])
