@@ -72,7 +72,7 @@ def run(inputs, params: ExtractParams) -> dict:
     return out
 
 
-STAGE = Stage(name="extract", version="2", params=ExtractParams,
+STAGE = Stage(name="extract", version="3", params=ExtractParams,
               after=("dark", "flat", "wavecal", "combiner"), granularity="exposure",
               plan=plan, run=run,
               doc="per on-sky exposure: sky/dark subtraction, optimal extraction, P2VM -> "

@@ -16,6 +16,12 @@ fit repeated.
 Axes: frames ``(frame, y, x)`` in e- (dark subtracted, divided by the pixel
 response); profiles ``(trace, y, x)``; results ``(frame, trace, x)``.
 
+Cost: each trace is fitted on the rows where its profile exceeds 1e-7 of its peak (a
+window of ~12 rows for a 1-pixel profile), not on the whole column, whenever the
+profiles are that compact and traces three apart do not overlap; otherwise every
+row of the column is used. The answers agree to ~1e-7. Outliers are sought among the
+windows' pixels: a cosmic ray far from every trace carries no weight and is left.
+
 Mask and NaN policy: ``valid`` (True = usable; bad pixels *and* saturated pixels
 must be False) removes pixels from the fit. NaN pixels raise with
 ``nan_policy="raise"`` (default) or are treated as invalid with ``"mask"``. A
@@ -68,8 +74,14 @@ def _solve_banded(diag_sums, rhs, n_sweep=12):
             out[:, d:] += ad[:, :-d] * f[:, :-d]
         return out
 
+    # Jacobi converges as rho^n, rho the largest off-diagonal row sum over the diagonal:
+    # sweep until rho^n < 1e-13 (isolated traces: one or two sweeps), at most n_sweep
+    rho = float(np.max((np.abs(a1) + np.abs(a2)
+                        + np.pad(np.abs(a1), ((0, 0), (1, 0), (0, 0)))[:, :-1]
+                        + np.pad(np.abs(a2), ((0, 0), (2, 0), (0, 0)))[:, :-2]) / np.abs(a0)))
+    n = n_sweep if rho >= 1 else int(min(n_sweep, max(1, np.ceil(-13 / np.log10(max(rho, 1e-300))))))
     f = rhs / a0
-    for _ in range(n_sweep):
+    for _ in range(n):
         f = (rhs - offdiag_times(f)) / a0
     inv0 = 1.0 / a0
     second = np.zeros_like(a0)
@@ -78,6 +90,125 @@ def _solve_banded(diag_sums, rhs, n_sweep=12):
         second[:, d:] += ad[:, :-d] ** 2 * inv0[:, :-d]
     var = inv0 + inv0 ** 2 * second
     return f.transpose(2, 1, 0), var.transpose(2, 1, 0)
+
+
+def _fit_dense(d, ok, rn2, prof, window, *, clip, n_iter, min_coverage):
+    """Every trace against every row of each column (any profile shape).
+    Returns flux, diagonal variance (frame, trace, x), coverage flags (x, trace, frame)
+    and rejections per frame."""
+    n_f, n_y, n_x = d.shape
+    n_t = prof.shape[0]
+    pt = prof.transpose(2, 0, 1)                                        # (x, trace, y)
+    pp = [pt * pt]
+    for s in (1, 2):
+        q = np.zeros_like(pt)
+        q[:, : n_t - s] = pt[:, : n_t - s] * pt[:, s:]
+        pp.append(q)
+    dt = d.transpose(2, 1, 0)                                           # (x, y, frame)
+    var = (rn2[None] + np.maximum(d, 0.0)).transpose(2, 1, 0)
+    okt = ok.transpose(2, 1, 0)
+    n_rej = np.zeros(n_f, int)
+    for it in range(n_iter):
+        w = np.where(okt, 1.0 / var, 0.0)
+        sums = [m @ w for m in pp]                                      # (x, trace, frame)
+        cover = pt @ okt.astype(float)                                  # usable profile sum
+        good = cover >= min_coverage
+        sums[0] = np.where(good, sums[0], 1.0)
+        for s in (1, 2):
+            sums[s] = np.where(good & np.roll(good, -s, axis=1), sums[s], 0.0)
+        rhs = np.where(good, pt @ (dt * w), 0.0)
+        flux, ivar_diag = _solve_banded(sums, rhs)                      # (frame, trace, x)
+        model = pt.transpose(0, 2, 1) @ flux.transpose(2, 1, 0)         # (x, y, frame)
+        var = rn2.T[:, :, None] + np.maximum(model, 0.0)
+        if it < n_iter - 1:
+            # Horne's rule: reject at most the worst pixel per column and iteration
+            z2 = np.where(okt, (dt - model) ** 2 / var, 0.0)
+            worst = np.argmax(z2, axis=1)[:, None, :]                   # (x, 1, frame)
+            bad = np.zeros_like(okt)
+            np.put_along_axis(bad, worst, np.take_along_axis(z2, worst, 1) > clip ** 2, 1)
+            n_rej += bad.sum(axis=(0, 1))
+            okt = okt & ~bad
+    return flux, ivar_diag, good, n_rej
+
+
+def _trace_windows(prof, *, rel_floor=1e-7, max_fraction=0.5):
+    """Rows (trace, x, H) holding each trace's profile wherever it exceeds ``rel_floor``
+    of its column peak (H the longest such support), or None where windows do not pay
+    or do not apply: supports longer than ``max_fraction`` of the column, or traces
+    three places apart that still overlap (the banded solve couples two neighbours)."""
+    n_t, n_y, n_x = prof.shape
+    peak = prof.max(axis=1, keepdims=True)
+    inside = prof > rel_floor * np.where(peak > 0, peak, 1.0)
+    if not inside.any(axis=1).all():
+        return None
+    first = np.argmax(inside, axis=1)                                   # (trace, x)
+    last = n_y - 1 - np.argmax(inside[:, ::-1], axis=1)
+    h = int((last - first).max()) + 1
+    if h > max_fraction * n_y:
+        return None
+    if n_t > 3:
+        overlap = np.einsum("tyx,tyx->tx", prof[:-3], prof[3:])
+        if np.any(overlap > rel_floor * np.einsum("tyx,tyx->tx", prof, prof).max()):
+            return None
+    y0 = np.clip(first, 0, n_y - h)
+    return y0[:, :, None] + np.arange(h)                                # (trace, x, H)
+
+
+def _fit_windowed(d, ok, rn2, prof, rows, *, clip, n_iter, min_coverage):
+    """As :func:`_fit_dense`, each trace fitted on its own rows only (``rows`` from
+    :func:`_trace_windows`): the same normal equations, the profile products outside a
+    trace's support being zero, at a fraction of the cost. Outliers are sought among
+    the pixels of the windows."""
+    n_f, n_y, n_x = d.shape
+    n_t = prof.shape[0]
+    tt = np.arange(n_t)[:, None, None]
+    xx = np.arange(n_x)[None, :, None]
+    yx = rows.transpose(1, 0, 2)                                        # (x, trace, H)
+    xi = np.arange(n_x)[:, None, None]
+
+    def on_rows(k):                  # profile of trace t + k on trace t's rows, (x, t, H)
+        out = np.zeros(yx.shape)
+        lo, hi = max(0, -k), min(n_t, n_t - k)
+        if hi > lo:
+            out[:, lo:hi] = prof[tt[lo + k:hi + k], rows[lo:hi], xx].transpose(1, 0, 2)
+        return out
+    near = {k: on_rows(k) for k in (-2, -1, 0, 1, 2)}
+    pw = near[0]
+    stack = np.stack([near[k] for k in (-2, -1, 0, 1, 2)], axis=-1)     # (x, t, H, 5)
+    dt = d.transpose(2, 1, 0)                                           # (x, y, frame)
+    dw = dt[xi, yx]                                                     # (x, trace, H, frame)
+    rn2w = rn2.T[xi, yx][..., None]
+    okt = ok.transpose(2, 1, 0).copy()
+    okw = okt[xi, yx]
+    varw = rn2w + np.maximum(dw, 0.0)
+    n_rej = np.zeros(n_f, int)
+    for it in range(n_iter):
+        w = np.where(okw, 1.0 / varw, 0.0)
+        sums = [np.einsum("xth,xthf->xtf", pw * near[s], w) for s in (0, 1, 2)]
+        cover = np.einsum("xth,xthf->xtf", pw, okw.astype(float))
+        good = cover >= min_coverage
+        sums[0] = np.where(good, sums[0], 1.0)
+        for s in (1, 2):
+            sums[s] = np.where(good & np.roll(good, -s, axis=1), sums[s], 0.0)
+        rhs = np.where(good, np.einsum("xth,xthf->xtf", pw, dw * w), 0.0)
+        flux, ivar_diag = _solve_banded(sums, rhs)                      # (frame, trace, x)
+        fx = np.pad(flux.transpose(2, 1, 0), ((0, 0), (2, 2), (0, 0)))  # (x, trace+4, frame)
+        nb = np.stack([fx[:, 2 + k:2 + k + n_t] for k in (-2, -1, 0, 1, 2)], axis=2)
+        model = stack @ nb                                 # (x, t, H, 5) @ (x, t, 5, frame)
+        varw = rn2w + np.maximum(model, 0.0)
+        if it < n_iter - 1:
+            # Horne's rule: reject at most the worst pixel per column and iteration
+            z2 = np.where(okw, (dw - model) ** 2 / varw, 0.0)
+            flat = z2.reshape(n_x, -1, n_f)
+            worst = np.argmax(flat, axis=1)                             # (x, frame)
+            zmax = np.take_along_axis(flat, worst[:, None], 1)[:, 0]
+            row = yx.reshape(n_x, -1)[np.arange(n_x)[:, None], worst]   # (x, frame)
+            hit = zmax > clip ** 2
+            fx_, ff_ = np.nonzero(hit)
+            okt[fx_, row[hit], ff_] = False
+            n_rej += hit.sum(axis=0)
+            okw = okt[xi, yx]
+    return flux, ivar_diag, good, n_rej
 
 
 def optimal_extract(frames, profiles, *, read_noise, valid=None, clip: float = 6.0,
@@ -128,38 +259,10 @@ def optimal_extract(frames, profiles, *, read_noise, valid=None, clip: float = 6
         ok &= finite
     d = np.where(ok, d, 0.0)
     rn2 = np.broadcast_to(np.asarray(read_noise, float) ** 2, d.shape[1:])
-    n_f, n_y, n_x = d.shape
-    n_t = prof.shape[0]
-    pt = prof.transpose(2, 0, 1)                                        # (x, trace, y)
-    pp = [pt * pt]
-    for s in (1, 2):
-        q = np.zeros_like(pt)
-        q[:, : n_t - s] = pt[:, : n_t - s] * pt[:, s:]
-        pp.append(q)
-    dt = d.transpose(2, 1, 0)                                           # (x, y, frame)
-    var = (rn2[None] + np.maximum(d, 0.0)).transpose(2, 1, 0)
-    okt = ok.transpose(2, 1, 0)
-    n_rej = np.zeros(n_f, int)
-    for it in range(n_iter):
-        w = np.where(okt, 1.0 / var, 0.0)
-        sums = [m @ w for m in pp]                                      # (x, trace, frame)
-        cover = pt @ okt.astype(float)                                  # usable profile sum
-        good = cover >= min_coverage
-        sums[0] = np.where(good, sums[0], 1.0)
-        for s in (1, 2):
-            sums[s] = np.where(good & np.roll(good, -s, axis=1), sums[s], 0.0)
-        rhs = np.where(good, pt @ (dt * w), 0.0)
-        flux, ivar_diag = _solve_banded(sums, rhs)                      # (frame, trace, x)
-        model = pt.transpose(0, 2, 1) @ flux.transpose(2, 1, 0)         # (x, y, frame)
-        var = rn2.T[:, :, None] + np.maximum(model, 0.0)
-        if it < n_iter - 1:
-            # Horne's rule: reject at most the worst pixel per column and iteration
-            z2 = np.where(okt, (dt - model) ** 2 / var, 0.0)
-            worst = np.argmax(z2, axis=1)[:, None, :]                   # (x, 1, frame)
-            bad = np.zeros_like(okt)
-            np.put_along_axis(bad, worst, np.take_along_axis(z2, worst, 1) > clip ** 2, 1)
-            n_rej += bad.sum(axis=(0, 1))
-            okt = okt & ~bad
+    window = _trace_windows(prof)
+    fit = _fit_windowed if window is not None else _fit_dense
+    flux, ivar_diag, good, n_rej = fit(d, ok, rn2, prof, window, clip=clip, n_iter=n_iter,
+                                       min_coverage=min_coverage)
     good_f = good.transpose(2, 1, 0)
     flux = np.where(good_f, flux, np.nan)
     ivar_diag = np.where(good_f, ivar_diag, np.nan)

@@ -52,7 +52,10 @@ def test_fluxes_unbiased_and_errors_honest(rng, spacing):
     # Honest errors: the pull's standard deviation is 1 within sampling (+-0.05 for
     # 200 frames x 64 cells, plus the model-variance approximation): common practice.
     assert abs(np.nanstd(pull) - 1) < 0.08
-    assert res.n_rejected.sum() >= 0.9 * n_f   # most cosmic rays found
+    # most cosmic rays that land on a trace (within 5 sigma of a centre) are found; the
+    # others carry no profile weight and need not be
+    on_trace = (np.abs(hit[1][:, None] - centres[:, hit[2]].T) < 5 * sigma).any(axis=1)
+    assert res.n_rejected.sum() >= 0.9 * on_trace.sum()
 
 
 def test_matches_horne_formula_single_trace(rng):
@@ -115,3 +118,27 @@ def test_resample_linear_exact_and_variance():
     assert near.sum() > inside.sum()
     np.testing.assert_allclose(ext[0][near], expect[near], rtol=1e-12)
     assert np.isnan(ext[0][~near]).all()
+
+
+@pytest.mark.parametrize("spacing", [8.0, 4.0])
+def test_windowed_fit_equals_the_full_column_fit(rng, spacing):
+    """Each trace fitted on its own rows gives the full-column normal equations' answer
+    (the profile products outside a trace's rows are below 1e-7 of the peak)."""
+    from pipeline.numerics.extraction import _fit_dense, _fit_windowed, _trace_windows
+    n_f, n_y, n_x, n_t = 6, 60, 12, 8
+    x = np.arange(n_x)
+    centres = (8 + spacing * np.arange(n_t))[:, None] + 0.03 * (x - 6)[None, :]
+    prof = trace_profiles(centres, np.full_like(centres, 1.1), n_y=n_y)
+    mean = np.einsum("kyx,kx->yx", prof, rng.uniform(500, 5000, (n_t, n_x)))
+    d = rng.poisson(np.broadcast_to(mean, (n_f, n_y, n_x))) + rng.normal(0, 5, (n_f, n_y, n_x))
+    ok = np.ones(d.shape, bool)
+    ok[:, int(centres[2, 4]), 4] = False
+    rows = _trace_windows(prof)
+    assert rows is not None and rows.shape[-1] < n_y / 2
+    rn2 = np.full((n_y, n_x), 25.0)
+    kw = dict(clip=50.0, n_iter=3, min_coverage=0.5)        # no outliers: same pixels used
+    fw, vw, gw, _ = _fit_windowed(np.where(ok, d, 0), ok, rn2, prof, rows, **kw)
+    fd, vd, gd, _ = _fit_dense(np.where(ok, d, 0), ok, rn2, prof, None, **kw)
+    np.testing.assert_array_equal(gw, gd)
+    np.testing.assert_allclose(fw, fd, rtol=1e-6)
+    np.testing.assert_allclose(vw, vd, rtol=1e-6)
