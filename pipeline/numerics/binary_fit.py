@@ -22,7 +22,10 @@ drawn from the frame-bootstrap covariance between channels,
 over spectral channels (each resample draws channels with replacement, keeping
 every baseline and triangle of a channel together; Efron & Tibshirani 1993, An
 Introduction to the Bootstrap, ch. 6), which also sees residual errors correlated
-between channels that the quoted errors miss. The largest covariance (by the trace
+between channels that the quoted errors miss. The realisations are refitted from
+the best fit all at once (:func:`refit_batch`: Levenberg-Marquardt vectorised over
+realisations, analytic Jacobian, lmfit's stopping rule), the same least-squares
+problem lmfit solves for the data. The largest covariance (by the trace
 of the position block) is reported; likewise for the primary's offset, and every
 other error is the largest of the estimates. The flux-ratio error adds the
 uncertainty of the pair's place in the fibre (``pointing_sigma_mas``).
@@ -216,7 +219,7 @@ def _primary_grid(obs, params, ch, *, step, radius, fibre_fwhm_mas):
     pd = point_phasor(u, v, wave, dx, dy)
     fwhm = None if fibre_fwhm_mas is None else fibre_fwhm_mas * MAS
     chi2 = np.empty(x1.size)
-    chunk = max(1, 500_000 // z.size)
+    chunk = max(1, 30_000 // z.size)
     for s in range(0, x1.size, chunk):
         sl = slice(s, s + chunk)
         xa, ya = x1[sl, None, None] * MAS, y1[sl, None, None] * MAS         # (pos, 1, 1)
