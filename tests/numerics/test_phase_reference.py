@@ -201,9 +201,10 @@ def test_flux_weighted_phasor(rng):
             amp = np.sqrt(flux[a:b, 0] * flux[a:b, 1])
             num = np.mean(amp * np.exp(-2j * np.pi * opd[a:b, 0] / lam))
             direct = num / np.sqrt(flux[a:b, 0].mean() * flux[a:b, 1].mean())
-            assert got[f, 0, w] == pytest.approx(direct, rel=1e-12)
+            # float32 phases (mean_phasor): ~1e-7 relative
+            assert got[f, 0, w] == pytest.approx(direct, rel=1e-6)
     plain = mean_phasor(opd, lo, hi, wave)
-    assert np.all(np.abs(got) <= np.abs(plain) + 1e-12)
+    assert np.all(np.abs(got) <= np.abs(plain) + 1e-6)
     # constant fluxes: the weighting changes nothing
     same = mean_phasor(opd, lo, hi, wave, flux=np.full((n, 2), 3.0), baselines=[(0, 1)])
     np.testing.assert_allclose(same, plain, rtol=1e-12)
