@@ -231,6 +231,18 @@ def fit_fringe_scan(intensity, opd, wave_guess, *, n_block: int = 32, n_iter: in
                    snr=snr_fit.reshape(pshape))
 
 
+def _weighted_gram(weight, basis):
+    """sum_s weight[s, p] basis[s, p, i] basis[s, p, j] -> (p, i, j), as one batched
+    matrix product per pixel (BLAS), not a three-operand einsum."""
+    b = basis.transpose(1, 0, 2)                                        # (p, s, i)
+    return (b * weight.T[:, :, None]).transpose(0, 2, 1) @ b
+
+
+def _weighted_project(basis, values):
+    """sum_s basis[s, p, i] values[s, p] -> (p, i)."""
+    return (basis.transpose(1, 2, 0) @ values.T[:, :, None])[..., 0]
+
+
 def _gauss_newton(y, o, span, sig, dch, oc, use, n_iter=8):
     """Levenberg-Marquardt fit of A0 + A1 o + env(o - oc) s(sig) Re[Z e^{-2 pi i sig o}]
     per pixel. y, o, span: (sample, pix); sig, dch, oc: (pix,)."""
@@ -246,21 +258,21 @@ def _gauss_newton(y, o, span, sig, dch, oc, use, n_iter=8):
         ph = 2 * np.pi * sig * o
         c, s = np.cos(ph), np.sin(ph)
         lin_b = np.stack([np.ones_like(o), o / oscale, env * c, env * s], -1)
-        m = np.einsum("sp,spi,spj->pij", use, lin_b, lin_b)
+        m = _weighted_gram(use, lin_b)
         lin = np.linalg.solve(m + 1e-12 * np.eye(4) * np.trace(m, axis1=1, axis2=2)[:, None, None],
-                              np.einsum("spi,sp->pi", lin_b, use * y)[..., None])[..., 0]
+                              _weighted_project(lin_b, use * y)[..., None])[..., 0]
         fr = lin[:, 2] * c + lin[:, 3] * s
         dfr = -lin[:, 2] * s + lin[:, 3] * c
         jac = np.concatenate([lin_b, np.stack([env * dfr * 2 * np.pi * o,
                                                env * fr * (-2 * k4 * dch * xo ** 2),
                                                env * fr * (2 * k4 * dch ** 2 * xo)], -1)], -1)
         res = use * (y - np.einsum("spi,pi->sp", lin_b, lin))
-        jtj = np.einsum("sp,spi,spj->pij", use, jac, jac)
+        jtj = _weighted_gram(use, jac)
         norm = np.sqrt(np.maximum(np.einsum("pii->pi", jtj), 1e-300))
         jtj_n = jtj / norm[:, :, None] / norm[:, None, :]
         if it == n_iter:
             break
-        g = np.einsum("spi,sp->pi", jac, res) / norm
+        g = _weighted_project(jac, res) / norm
         step = np.linalg.solve(jtj_n + 1e-3 * np.eye(7), g[..., None])[..., 0] / norm
         sig = sig + np.clip(step[:, 4], -0.05 / oscale, 0.05 / oscale)
         dch = np.abs(dch + np.clip(step[:, 5], -0.5 * dch, 0.5 * dch))
@@ -335,8 +347,8 @@ def _phasor_chunk(y, o, span, variance, lam, bw, oc, max_opd):
     w = np.ones_like(y) if variance is None else 1 / variance
     if max_opd is not None:
         w = w * (np.abs(o) <= max_opd)
-    lhs = np.einsum("sp,spi,spj->pij", w, basis, basis)
-    rhs = np.einsum("sp,spi,sp->pi", w, basis, y)
+    lhs = _weighted_gram(w, basis)
+    rhs = _weighted_project(basis, w * y)
     cov = np.linalg.inv(lhs)
     sol = (cov @ rhs[..., None])[..., 0]
     if variance is None:       # scale by the residual variance
