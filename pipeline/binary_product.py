@@ -32,7 +32,8 @@ def observables_from_product(view, *, use_phases: bool = True, n_draw: int = 0,
     """Observables of a ``calibrate`` (or ``average``) product.
 
     ``band`` (or ``bandwidth``) gives each channel's FWHM; without it the channel
-    spacing is used. With ``n_draw > 0`` and a ``vis2_cov`` dataset, ``n_draw``
+    spacing is used. ``band_baseline`` (pol, baseline, wave), when present, gives each
+    baseline's own (its traces' line-spread and the resampling) and is used instead. With ``n_draw > 0`` and a ``vis2_cov`` dataset, ``n_draw``
     realisations are drawn from the frame-bootstrap covariances between channels
     (``vis2_cov``, ``t3phi_cov``, ``visphi_cov``; independent channels where absent)
     for the bootstrap of the fit.
@@ -54,6 +55,10 @@ def observables_from_product(view, *, use_phases: bool = True, n_draw: int = 0,
     band = next((np.asarray(view[k], float) for k in ("band", "bandwidth") if k in view), None)
     if band is None or band.shape != wave.shape:
         band = np.abs(np.gradient(wave))
+    if "band_baseline" in view:      # per baseline (pol, baseline, wave): mean over pol
+        per_baseline = np.nanmean(np.asarray(view["band_baseline"], float), axis=0)
+        if per_baseline.shape[-1] == wave.size and np.all(np.isfinite(per_baseline)):
+            band = per_baseline
     vp = vpe = None
     if use_phases and "visphi" in view and "visphi_err" in view:
         vp, vpe = np.asarray(view["visphi"], float), np.asarray(view["visphi_err"], float)

@@ -22,8 +22,8 @@ from .numerics import combiner_model as cm
 from .numerics.extraction import optimal_extract, resample_to_grid
 from .numerics.traces import (combine_valid, detector_response, find_traces, pixel_response,
                               trace_profiles)
-from .numerics.wavelength import (common_grid, fit_dispersion_law, fit_fringe_scan,
-                                  fringe_phasor)
+from .numerics.wavelength import (baseline_bandwidth, common_grid, fit_dispersion_law,
+                                  fit_fringe_scan, fringe_phasor)
 from .stage import Array
 
 __all__ = ["check_raw", "flat_products", "scan_spectra", "frame_opd", "wavecal_products",
@@ -277,11 +277,14 @@ def _bandwidth_law(bw, bw_err, law, *, max_rel_err=0.02, decay=None, min_decay=0
 
 def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trace", "x"),
                      min_snr=5.0, max_bw_rel_err=0.02, max_opd=None,
-                     min_envelope_decay=0.0, trim_grid=True, nominal_fwhm_px=None) -> dict:
+                     min_envelope_decay=0.0, trim_grid=True, nominal_fwhm_px=None,
+                     trace_baseline=None, n_pol=1, n_baseline=6) -> dict:
     """Wavelength products of a channel from scan intensities (frame, trace, x);
     ``max_opd`` (m, broadcastable to (trace, x)) limits the fit to the central packet.
     ``trim_grid`` False keeps one grid point per pixel (a channel calibrated per pixel,
-    never resampled: the fringe tracker)."""
+    never resampled: the fringe tracker). With ``trace_baseline`` (trace,) (traces
+    ordered output * n_pol + pol) the product also holds each baseline's effective
+    bandwidth on the grid (:func:`numerics.wavelength.baseline_bandwidth`)."""
     ok = np.isfinite(intensity)
     dead = ~ok.all(axis=0)                                   # pixels never extracted
     fill = np.where(ok, intensity, np.nanmedian(np.where(ok, intensity, np.nan), axis=0))
@@ -302,7 +305,17 @@ def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trac
     bw_grid = np.median(np.stack([np.interp(grid, law[k], bw[k]) for k in range(law.shape[0])]),
                         axis=0)
     res = np.where(used, wave - law, np.nan)
-    return {"wave_pixel": Array(law, axes, "m", "effective vacuum wavelength (smooth law)"),
+    extra = {}
+    if trace_baseline is not None:
+        n_tr = law.shape[0]
+        extra["bandwidth_baseline"] = Array(
+            baseline_bandwidth(law, bw, grid, trace_baseline, np.arange(n_tr) % n_pol,
+                               n_baseline=n_baseline, n_pol=n_pol),
+            ("pol", "baseline", "wave"), "m",
+            "effective fringe bandwidth of each baseline on the grid (its traces' line-spread "
+            "and the linear resampling)")
+    return {**extra,
+            "wave_pixel": Array(law, axes, "m", "effective vacuum wavelength (smooth law)"),
             "bandwidth_pixel": Array(bw, axes, "m", "effective FWHM bandwidth"),
             "law_coeffs": Array(coeffs, (axes[0], "coef"), "m",
                                 "polynomial in (x - x_ref) / x_scale, lowest order first"),
@@ -337,7 +350,8 @@ def wavecal_science(raw, dark, flat, *, instrument, setup_name, polmode, window=
     bw = setup.channel_fwhm_px * setup.dispersion_m_per_px
     return wavecal_products(flux, opd[:, base, None], span[:, base, None], guess,
                             max_opd=window * guess ** 2 / bw,
-                            nominal_fwhm_px=setup.channel_fwhm_px, **kw)
+                            nominal_fwhm_px=setup.channel_fwhm_px, trace_baseline=base,
+                            n_pol=setup.n_pol(polmode), n_baseline=len(comb.baselines), **kw)
 
 
 def wavecal_ft(raw, ft_dark, *, instrument, window=0.6, **kw) -> dict:

@@ -80,9 +80,12 @@ def exposure_uvw(instrument, facts: dict, mjd: float) -> np.ndarray:
 
 
 def average_product(extract, reference, header, instrument, *, label: str, n_boot: int,
-                    seed: int, use_contrast_loss: bool = True, band_m=None) -> dict:
+                    seed: int, use_contrast_loss: bool = True, band_m=None,
+                    band_baseline_m=None) -> dict:
     """Average one exposure (``extract`` and ``reference`` products) into the
-    ``average`` product's outputs."""
+    ``average`` product's outputs. ``band_m`` (wave,) is each channel's FWHM,
+    ``band_baseline_m`` (pol, baseline, wave) each baseline's effective fringe
+    bandwidth (wavecal's ``bandwidth_baseline``), passed on for the smearing model."""
     facts = header_facts(header)
     coherent = reference["coherent_ref"]
     valid = reference["frame_valid"] if "frame_valid" in reference else None
@@ -118,7 +121,11 @@ def average_product(extract, reference, header, instrument, *, label: str, n_boo
     n_frame = len(start)
     frac = 1.0 - (valid.sum() / valid.size if valid is not None else 1.0)
     cov_w = ("pol", "baseline", "wave", "wave2")
-    return dict(
+    extra = {}
+    if band_baseline_m is not None and np.shape(band_baseline_m)[-1] == wave.size:
+        extra["band_baseline"] = Array(np.asarray(band_baseline_m, float), _PB, "m",
+                                       "effective fringe bandwidth per baseline")
+    return dict(**extra,
         vis2=Array(res.vis2, _PB, "", "bias-corrected squared visibility"),
         vis2_err=Array(res.vis2_err, _PB, "", "bootstrap error"),
         vis2_cov=Array(res.vis2_cov, cov_w, "", "bootstrap covariance between wavelengths"),
@@ -237,7 +244,8 @@ def calibrate_product(science, calibrators, *, science_path: str = "", method: s
     pcov = science["visphi_cov"] + zp_cov
     tcov = (science["t3phi_cov"] + (1 - a) ** 2 * cals[lo]["t3phi_cov"]
             + a ** 2 * cals[hi]["t3phi_cov"])
-    out = {k: science[k] for k in ("flux", "flux_err", "uvw", "wave", "band", "n_valid")}
+    out = {k: science[k] for k in ("flux", "flux_err", "uvw", "wave", "band", "n_valid",
+                                   "band_baseline") if k in science}
     out = {k: Array(v, tuple(science.axes(k)) if hasattr(science, "axes") else _axes(k),
                     _unit(science, k)) for k, v in out.items()}
     cov_w = ("pol", "baseline", "wave", "wave2")
@@ -278,14 +286,15 @@ def _outer_div(cov, x):
 
 def _axes(name):
     return {"flux": _PTEL, "flux_err": _PTEL, "uvw": ("baseline", "uvw"), "wave": ("wave",),
-            "band": ("wave",), "n_valid": ("baseline",)}[name]
+            "band": ("wave",), "n_valid": ("baseline",), "band_baseline": _PB}[name]
 
 
 def _unit(view, name):
     try:
         return view.unit(name)
     except (AttributeError, KeyError):
-        units = {"flux": "e-/s", "flux_err": "e-/s", "uvw": "m", "wave": "m", "band": "m"}
+        units = {"flux": "e-/s", "flux_err": "e-/s", "uvw": "m", "wave": "m", "band": "m",
+                 "band_baseline": "m"}
         return units.get(name, "")
 
 

@@ -42,13 +42,15 @@ def run(inputs, params: AverageParams) -> dict:
     wavecal = prods.get("wavecal")
     band = (wavecal["bandwidth_grid"]
             if wavecal is not None and "bandwidth_grid" in wavecal else None)
+    band_bl = (wavecal["bandwidth_baseline"]
+               if wavecal is not None and "bandwidth_baseline" in wavecal else None)
     return average_product(prods["extract"], prods["reference"], inputs.raw[0].header,
                            inputs.instrument, label=inputs.unit.label, n_boot=params.n_boot,
                            seed=params.seed, use_contrast_loss=params.use_contrast_loss,
-                           band_m=band)
+                           band_m=band, band_baseline_m=band_bl)
 
 
-STAGE = Stage(name="average", version="1", params=AverageParams,
+STAGE = Stage(name="average", version="2", params=AverageParams,
               after=("extract", "reference"), granularity="exposure", plan=plan, run=run,
               doc="per exposure: bias-corrected V2, closure phases, referenced visibilities, "
                   "photometry, bootstrap errors")

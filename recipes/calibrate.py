@@ -73,7 +73,7 @@ def run(inputs, params: CalibrateParams) -> dict:
     return out
 
 
-STAGE = Stage(name="calibrate", version="2", params=CalibrateParams, after=("average",),
+STAGE = Stage(name="calibrate", version="3", params=CalibrateParams, after=("average",),
               granularity="exposure", plan=plan, run=run,
               doc="transfer function and phase zero-points from calibrators; calibrated "
                   "observables and OIFITS v2 per science exposure")

@@ -77,7 +77,9 @@ class Observables:
     vis2, vis2_err : ndarray, shape (n_pol, n_baseline, n_wave)
     t3phi, t3phi_err : ndarray, shape (n_pol, n_triangle, n_wave), radians
     uvw : ndarray, shape (n_baseline, 3) or (n_time, n_baseline, 3), metres
-    wave, bandwidth : ndarray, shape (n_wave,), metres (bandwidth: channel FWHM)
+    wave : ndarray, shape (n_wave,), metres
+    bandwidth : ndarray, shape (n_wave,) or (n_baseline, n_wave), metres: the FWHM of each
+        channel, or of each baseline's fringes in each channel
     visphi, visphi_err : ndarray, shape (n_pol, n_baseline, n_wave), radians, or None
         Calibrated referenced phases (phase centre: the science pointing).
     vis2_boot, t3phi_boot, visphi_boot : ndarray, shape (n_boot, ...) or None
@@ -109,6 +111,9 @@ class Observables:
                                  f"found {np.shape(getattr(self, name))}")
         if (self.visphi is None) != (self.visphi_err is None):
             raise ValueError("Observables: give both visphi and visphi_err, or neither")
+        if self.bandwidth is not None and np.shape(self.bandwidth) not in ((nw,), (nb, nw)):
+            raise ValueError(f"Observables.bandwidth: expected ({nw},) or ({nb}, {nw}), "
+                             f"found {np.shape(self.bandwidth)}")
         if np.shape(self.uvw)[-2:] != (nb, 3):
             raise ValueError(f"Observables.uvw: expected (..., {nb}, 3), "
                              f"found {np.shape(self.uvw)}")
@@ -210,7 +215,7 @@ def _primary_grid(obs, params, ch, *, step, radius, fibre_fwhm_mas):
     uvw = np.asarray(obs.uvw, float).reshape(-1, len(obs.baselines), 3).mean(0)
     u, v = uvw[:, 0, None], uvw[:, 1, None]                                  # (baseline, 1)
     wave = np.asarray(obs.wave)[ch]
-    bw = None if obs.bandwidth is None else np.asarray(obs.bandwidth)[ch]
+    bw = None if obs.bandwidth is None else np.asarray(obs.bandwidth)[..., ch]
     p = params.valuesdict()
     dx, dy = p["dra"] * MAS, p["ddec"] * MAS
     f2 = flux_ratio_law(wave, p["flux_ratio"], p["flux_slope"])
@@ -327,7 +332,7 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
     inside = np.hypot(xx, yy) <= search_radius_mas
     nw = len(obs.wave)
     ch = np.unique(np.linspace(0, nw - 1, min(nw, search_max_channels)).round().astype(int))
-    bw = None if obs.bandwidth is None else np.asarray(obs.bandwidth)[ch]
+    bw = None if obs.bandwidth is None else np.asarray(obs.bandwidth)[..., ch]
     # With diameters to fit, the grid uses closure phases only: a resolved star's V2 loss,
     # unknown yet, would otherwise pull the search towards a bright close companion.
     e2 = obs.vis2_err[..., ch] * (np.nan if any(fit_diameters) else 1.0)

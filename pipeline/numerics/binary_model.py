@@ -88,7 +88,8 @@ def binary_observables(uvw_m, wave_m, *, dra_mas, ddec_mas, flux_ratio, flux_slo
     primary_dra_mas, primary_ddec_mas : float, primary offset from the science
         fibre's pointing (phase centre), mas
     diameter1_mas, diameter2_mas : float, uniform-disk diameters, mas
-    bandwidth_m : ndarray, shape (n_wave,), metres, or None (no smearing)
+    bandwidth_m : ndarray, shape (n_wave,) or (n_baseline, n_wave), metres, or None (no
+        smearing)
     fibre_fwhm_mas : float or None, fibre acceptance FWHM at 2.2 um (None: no attenuation)
 
     Returns

@@ -360,3 +360,18 @@ def test_draw_correlated_semi_definite_covariance(rng):
                             n=20000, seed=5)
     assert np.all(np.isfinite(draws))
     np.testing.assert_allclose(np.cov(draws[:, 0].T), cov, atol=0.05 * cov.diagonal().max())
+
+
+def test_per_baseline_bandwidth_is_accepted_and_equivalent(uvw, rng):
+    """A (baseline, wave) bandwidth whose rows are all the channel FWHM gives the fit of
+    the (wave,) bandwidth; a wrong shape is refused."""
+    import dataclasses
+    obs = synth(uvw, rng, dra=12.0, ddec=-7.0, ratio=0.3)
+    per_bl = np.broadcast_to(obs.bandwidth, (6, obs.wave.size)).copy()
+    a = fit_binary(obs, fibre_fwhm_mas=FIBRE, search_radius_mas=30.0, n_boot=0, n_start=2)
+    b = fit_binary(dataclasses.replace(obs, bandwidth=per_bl), fibre_fwhm_mas=FIBRE,
+                   search_radius_mas=30.0, n_boot=0, n_start=2)
+    np.testing.assert_allclose([b.dra, b.ddec, b.flux_ratio], [a.dra, a.ddec, a.flux_ratio],
+                               rtol=1e-9)
+    with pytest.raises(ValueError, match="bandwidth"):
+        dataclasses.replace(obs, bandwidth=per_bl[:3])

@@ -99,3 +99,22 @@ def test_dispersion_law_rejects_outliers(rng):
     # with half a pixel of extrapolation, so no column is trimmed
     np.testing.assert_allclose(grid, law_true + 0.5e-9, atol=1e-11)
     assert common_grid(law, extrapolate_px=0.0).size == 62   # one column lost at each end
+
+
+def test_baseline_bandwidth_adds_the_resampling_spread():
+    """Grid points half way between pixels d apart: a linear interpolation (weights 1/2,
+    1/2) has variance d^2 / 4, so FWHM^2 = b^2 + 8 ln2 d^2 / 4 (Gaussian FWHM = 2 sqrt(2 ln 2)
+    sigma, standard); on a pixel the line-spread alone. Traces of one baseline and
+    polarisation combine as the root mean square."""
+    from pipeline.numerics.wavelength import baseline_bandwidth
+    d = 20e-9
+    wp = 2.0e-6 + d * np.arange(24)[None, :] + np.array([[0.0], [0.0], [0.5 * d], [0.5 * d]])
+    bp = np.array([[80e-9], [100e-9], [90e-9], [90e-9]]) * np.ones((1, 24))
+    grid = wp[0, 2:-2]
+    out = baseline_bandwidth(wp, bp, grid, trace_baseline=[0, 0, 1, 1], trace_pol=[0, 0, 0, 0],
+                             n_baseline=3, n_pol=1)
+    assert out.shape == (1, 3, grid.size)
+    np.testing.assert_allclose(out[0, 0], np.sqrt((80e-9 ** 2 + 100e-9 ** 2) / 2), rtol=1e-12)
+    np.testing.assert_allclose(out[0, 1], np.sqrt(90e-9 ** 2 + 8 * np.log(2) * d ** 2 / 4),
+                               rtol=1e-9)
+    assert np.isnan(out[0, 2]).all()
