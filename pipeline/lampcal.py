@@ -15,6 +15,9 @@ exposure; fringe-tracker frames are centred half a period before their
 
 from __future__ import annotations
 
+import dataclasses
+import warnings
+
 import numpy as np
 
 from .errors import BadInput, MissingCalibration
@@ -22,8 +25,8 @@ from .numerics import combiner_model as cm
 from .numerics.extraction import optimal_extract, resample_to_grid
 from .numerics.traces import (combine_valid, detector_response, find_traces, pixel_response,
                               trace_profiles)
-from .numerics.wavelength import (baseline_bandwidth, common_grid, fit_dispersion_law,
-                                  fit_fringe_scan, fringe_phasor)
+from .numerics.wavelength import (ScanFit, baseline_bandwidth, common_grid,
+                                  fit_dispersion_law, fit_fringe_scan, fringe_phasor)
 from .stage import Array
 
 __all__ = ["check_raw", "flat_products", "scan_spectra", "frame_opd", "wavecal_products",
@@ -275,6 +278,53 @@ def _bandwidth_law(bw, bw_err, law, *, max_rel_err=0.02, decay=None, min_decay=0
     return fwhm_px[:, None] * disp, fwhm_px, measured
 
 
+def _median_filled(a, *, samples_per_block=2_000_000):
+    """Copy of ``a`` (sample, trace, ...) with each NaN sample replaced by its pixel's
+    median over samples (0 for a pixel never extracted), a block of traces at a time."""
+    out = np.empty(a.shape, float)
+    per_trace = max(1, a.size // max(a.shape[1], 1))
+    block = max(1, samples_per_block // per_trace)
+    for t0 in range(0, a.shape[1], block):
+        y = a[:, t0:t0 + block]
+        ok = np.isfinite(y)
+        with warnings.catch_warnings():               # all-NaN pixels: dead, 0 here
+            warnings.simplefilter("ignore", RuntimeWarning)
+            med = np.nanmedian(np.where(ok, y, np.nan), axis=0)
+        out[:, t0:t0 + block] = np.nan_to_num(np.where(ok, y, med))
+    return out
+
+
+def _fit_scan_by_traces(intensity, opd, span, wave_guess, *, min_snr, max_opd,
+                        samples_per_block=2_000_000):
+    """:func:`fit_fringe_scan` over blocks of traces (every pixel is fitted on its own,
+    so the result is the same; the fit's working copies stay a block's size, not the
+    channel's: 1200 scan frames of 48 traces x 256 pixels are 118 MB per array).
+    NaN samples (not extracted) are replaced by the pixel's median first. Also returns
+    the largest |OPD| fitted per pixel. intensity (frame, trace, x); opd, span
+    broadcastable to it; wave_guess, max_opd broadcastable to (trace, x)."""
+    n_s, n_tr = intensity.shape[:2]
+    pshape = intensity.shape[1:]
+    per_trace = max(1, int(np.prod(intensity.shape[2:])) * n_s)
+    block = max(1, samples_per_block // per_trace)
+    opd_b = np.broadcast_to(opd, intensity.shape)
+    span_b = None if span is None else np.broadcast_to(span, intensity.shape)
+    guess = np.broadcast_to(np.asarray(wave_guess, float), pshape)
+    limit = None if max_opd is None else np.broadcast_to(np.asarray(max_opd, float), pshape)
+    fits, reach = [], []
+    for t0 in range(0, n_tr, block):
+        sl = slice(t0, t0 + block)
+        fill = _median_filled(intensity[:, sl])
+        fits.append(fit_fringe_scan(fill, opd_b[:, sl], guess[sl],
+                                    opd_span=None if span_b is None else span_b[:, sl],
+                                    min_snr=min_snr,
+                                    max_opd=None if limit is None else limit[sl]))
+        o = np.abs(opd_b[:, sl])
+        reach.append((o if limit is None else np.where(o <= limit[sl], o, 0.0)).max(axis=0))
+    fit = ScanFit(**{f.name: np.concatenate([getattr(b, f.name) for b in fits])
+                     for f in dataclasses.fields(ScanFit)})
+    return fit, np.concatenate(reach)
+
+
 def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trace", "x"),
                      min_snr=5.0, max_bw_rel_err=0.02, max_opd=None,
                      min_envelope_decay=0.0, trim_grid=True, nominal_fwhm_px=None,
@@ -285,18 +335,13 @@ def wavecal_products(intensity, opd, span, wave_guess, *, law_deg=3, axes=("trac
     never resampled: the fringe tracker). With ``trace_baseline`` (trace,) (traces
     ordered output * n_pol + pol) the product also holds each baseline's effective
     bandwidth on the grid (:func:`numerics.wavelength.baseline_bandwidth`)."""
-    ok = np.isfinite(intensity)
-    dead = ~ok.all(axis=0)                                   # pixels never extracted
-    fill = np.where(ok, intensity, np.nanmedian(np.where(ok, intensity, np.nan), axis=0))
-    fit = fit_fringe_scan(np.nan_to_num(fill), opd, wave_guess, opd_span=span, min_snr=min_snr,
-                          max_opd=max_opd)
+    dead = ~np.isfinite(intensity).all(axis=0)               # pixels never extracted
+    fit, opd_reach = _fit_scan_by_traces(intensity, opd, span, wave_guess, min_snr=min_snr,
+                                         max_opd=max_opd)
     wave = np.where(dead, np.nan, fit.wave)
     law, coeffs, used, x_ref, x_scale = fit_dispersion_law(wave, fit.wave_err, deg=law_deg)
-    o = np.abs(np.broadcast_to(opd, intensity.shape))
-    if max_opd is not None:
-        o = np.where(o <= max_opd, o, 0.0)
     k4 = np.pi ** 2 / (4 * np.log(2))
-    decay = 1 - np.exp(-k4 * (fit.bandwidth / law ** 2 * o.max(axis=0)) ** 2)
+    decay = 1 - np.exp(-k4 * (fit.bandwidth / law ** 2 * opd_reach) ** 2)
     bw, fwhm_px, measured = _bandwidth_law(np.where(dead, np.nan, fit.bandwidth),
                                            fit.bandwidth_err, law, max_rel_err=max_bw_rel_err,
                                            decay=decay, min_decay=min_envelope_decay,
@@ -377,7 +422,7 @@ def _to_pol_output(a, n_pol):
 
 def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pixel,
                       bandwidth_pixel, wave_grid, n_pol, instrument, resample=True,
-                      window_coherence=0.5, transmission_deg=3) -> dict:
+                      window_coherence=0.5, transmission_deg=3, qc_frames=256) -> dict:
     """Combiner calibration from single-beam mean spectra and the delay scan.
 
     Parameters
@@ -393,21 +438,28 @@ def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pi
         of this degree in wavelength (:func:`combiner_model.smooth_transmissions`); -1
         keeps the per-channel values. The fringe tracker, calibrated per pixel with the
         pixel response inside its shares, is never smoothed.
+    qc_frames : int -- the model's residuals (QC) use at most this many scan frames near
+        zero OPD, evenly spaced
     """
     comb = instrument.combiner
     if not resample:     # per-pixel channel: refer every output to the median wavelength
         q = _lamp_shape_correction(beam_flux.sum(0), wave_pixel, wave_grid)
         beam_flux, scan_intensity, scan_var = beam_flux * q, scan_intensity * q, scan_var * q ** 2
-    ok = np.isfinite(scan_intensity)
-    fill = np.where(ok, scan_intensity, np.nanmedian(np.where(ok, scan_intensity, np.nan), 0))
+    fill = _median_filled(scan_intensity)
     wave_pixel, bandwidth_pixel = np.asarray(wave_pixel), np.asarray(bandwidth_pixel)
     max_opd = window_coherence * wave_pixel ** 2 / bandwidth_pixel
-    z, z_var, dc = fringe_phasor(np.nan_to_num(fill), opd, wave_pixel, bandwidth_pixel,
+    z, z_var, dc = fringe_phasor(fill, opd, wave_pixel, bandwidth_pixel,
                                  opd_span=span, max_opd=max_opd)
+    del fill
     # model residuals on the frames near zero OPD on every baseline (farther out, the
     # chromatic phase inside a channel makes the per-pixel model only approximate)
-    near = np.all(np.abs(np.broadcast_to(opd, scan_intensity.shape)) <= max_opd, axis=(1, 2))
-    near = near if near.any() else np.ones(near.shape, bool)
+    near = np.array([np.all(np.abs(np.broadcast_to(opd, scan_intensity.shape)[f]) <= max_opd)
+                     for f in range(scan_intensity.shape[0])])
+    near = np.flatnonzero(near) if near.any() else np.arange(near.size)
+    # QC of the model on at most qc_frames of them, evenly spaced (its figures are
+    # statistics; all 1200 frames of a long scan would only cost memory)
+    near = near[np.unique(np.linspace(0, near.size - 1, min(near.size, qc_frames)).round()
+                          .astype(int))]
     if resample:
         def grid(a, v=None):
             v = np.zeros(a.shape) if v is None else v
@@ -448,7 +500,7 @@ def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pi
                                     "relative inverse variances used in p2vm"),
             "lamp_flux": Array(lamp, ("pol", "telescope", "wave"), "e-", "scan lamp F_i"),
             "model_chi2": Array(chi2, pw, "", "QC: reduced chi2 of the model on scan frames "
-                                              "near zero OPD"),
+                                              "near zero OPD (at most qc_frames)"),
             "residual_rms": Array(np.sqrt(np.nanmean(res ** 2, axis=0)), pow_, "e-", "QC"),
             "phase_closure": Array(closure, pb, "rad", "QC: 0 for an ordered ABCD set"),
             "phase_imbalance": Array(imbalance, pb, "", "QC: |mean exp(i theta)|"),

@@ -311,27 +311,29 @@ def fringe_phasor(intensity, opd, wave, bandwidth, *, opd_centre=0.0, opd_span=N
     y = np.asarray(intensity, float)
     pshape = y.shape[1:]
     n_s = y.shape[0]
-    y = y.reshape(n_s, -1)
-    n_p = y.shape[1]
+    n_p = int(np.prod(pshape))
 
-    def flat(a, per_sample):
-        a = np.asarray(a, float)
-        if per_sample:
-            return np.broadcast_to(a, (n_s, *pshape)).reshape(n_s, -1)
-        return np.broadcast_to(a, pshape).reshape(-1)
-    o = flat(opd, True)
-    span = None if opd_span is None else flat(opd_span, True)
-    var = None if variance is None else flat(variance, True)
-    lam, bw, oc = flat(wave, False), flat(bandwidth, False), flat(opd_centre, False)
-    mo = None if max_opd is None else flat(max_opd, False)
+    # per-sample inputs stay broadcast views; each chunk of pixels is gathered on its own
+    # (bounded memory: no full (sample, pixel) copy of the OPDs or spans)
+    def per_sample(a):
+        return None if a is None else np.broadcast_to(np.asarray(a, float), (n_s, *pshape))
+
+    def per_pixel(a):
+        return None if a is None else np.broadcast_to(np.asarray(a, float), pshape).reshape(-1)
+    o, span, var = per_sample(opd), per_sample(opd_span), per_sample(variance)
+    lam, bw, oc = per_pixel(wave), per_pixel(bandwidth), per_pixel(opd_centre)
+    mo = per_pixel(max_opd)
     z = np.empty(n_p, complex)
     z_var, dc = np.empty(n_p), np.empty(n_p)
-    chunk = max(1, 4_000_000 // (4 * n_s))       # bounded memory over pixels
+    chunk = max(1, 4_000_000 // (4 * n_s))
     for p0 in range(0, n_p, chunk):
         sl = slice(p0, min(n_p, p0 + chunk))
+        idx = (slice(None),) + np.unravel_index(np.arange(sl.start, sl.stop), pshape)
+
+        def take(a):
+            return None if a is None else a[idx]
         z[sl], z_var[sl], dc[sl] = _phasor_chunk(
-            y[:, sl], o[:, sl], None if span is None else span[:, sl],
-            None if var is None else var[:, sl], lam[sl], bw[sl], oc[sl],
+            y[idx], take(o), take(span), take(var), lam[sl], bw[sl], oc[sl],
             None if mo is None else mo[sl])
     return z.reshape(pshape), z_var.reshape(pshape), dc.reshape(pshape)
 
