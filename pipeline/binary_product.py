@@ -33,7 +33,8 @@ def observables_from_product(view, *, use_phases: bool = True, n_draw: int = 0,
 
     ``band`` (or ``bandwidth``) gives each channel's FWHM; without it the channel
     spacing is used. ``band_baseline`` (pol, baseline, wave), when present, gives each
-    baseline's own (its traces' line-spread and the resampling) and is used instead. With ``n_draw > 0`` and a ``vis2_cov`` dataset, ``n_draw``
+    baseline's own (its traces' line-spread and the resampling) and is used instead.
+    With ``n_draw > 0`` and a ``vis2_cov`` dataset, ``n_draw``
     realisations are drawn from the frame-bootstrap covariances between channels
     (``vis2_cov``, ``t3phi_cov``, ``visphi_cov``; independent channels where absent)
     for the bootstrap of the fit.

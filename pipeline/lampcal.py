@@ -453,8 +453,7 @@ def combiner_products(beam_flux, scan_intensity, scan_var, opd, span, *, wave_pi
     del fill
     # model residuals on the frames near zero OPD on every baseline (farther out, the
     # chromatic phase inside a channel makes the per-pixel model only approximate)
-    near = np.array([np.all(np.abs(np.broadcast_to(opd, scan_intensity.shape)[f]) <= max_opd)
-                     for f in range(scan_intensity.shape[0])])
+    near = np.all(np.abs(np.broadcast_to(opd, scan_intensity.shape)) <= max_opd, axis=(1, 2))
     near = np.flatnonzero(near) if near.any() else np.arange(near.size)
     # QC of the model on at most qc_frames of them, evenly spaced (its figures are
     # statistics; all 1200 frames of a long scan would only cost memory)

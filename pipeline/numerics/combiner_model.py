@@ -26,7 +26,8 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["N_UNKNOWN", "transmissions", "smooth_transmissions", "contrast_and_phase", "build_v2pm", "weighted_pinv",
+__all__ = ["N_UNKNOWN", "transmissions", "smooth_transmissions", "contrast_and_phase",
+           "build_v2pm", "weighted_pinv",
            "condition_number", "model_residuals", "phase_set_qc", "output_noise_weights"]
 
 N_UNKNOWN = 16

@@ -76,10 +76,11 @@ def _solve_banded(diag_sums, rhs, n_sweep=12):
 
     # Jacobi converges as rho^n, rho the largest off-diagonal row sum over the diagonal:
     # sweep until rho^n < 1e-13 (isolated traces: one or two sweeps), at most n_sweep
-    rho = float(np.max((np.abs(a1) + np.abs(a2)
-                        + np.pad(np.abs(a1), ((0, 0), (1, 0), (0, 0)))[:, :-1]
-                        + np.pad(np.abs(a2), ((0, 0), (2, 0), (0, 0)))[:, :-2]) / np.abs(a0)))
-    n = n_sweep if rho >= 1 else int(min(n_sweep, max(1, np.ceil(-13 / np.log10(max(rho, 1e-300))))))
+    off = (np.abs(a1) + np.abs(a2) + np.pad(np.abs(a1), ((0, 0), (1, 0), (0, 0)))[:, :-1]
+           + np.pad(np.abs(a2), ((0, 0), (2, 0), (0, 0)))[:, :-2])
+    rho = float(np.max(off / np.abs(a0)))
+    n = n_sweep if rho >= 1 else int(np.clip(np.ceil(-13 / np.log10(max(rho, 1e-300))),
+                                             1, n_sweep))
     f = rhs / a0
     for _ in range(n):
         f = (rhs - offdiag_times(f)) / a0
@@ -90,6 +91,18 @@ def _solve_banded(diag_sums, rhs, n_sweep=12):
         second[:, d:] += ad[:, :-d] ** 2 * inv0[:, :-d]
     var = inv0 + inv0 ** 2 * second
     return f.transpose(2, 1, 0), var.transpose(2, 1, 0)
+
+
+def _solve_covered(sums, rhs, cover, min_coverage):
+    """Banded solve of the normal equations (``sums``: offsets 0, 1, 2; ``rhs``; all
+    (x, trace, frame)) for the traces whose usable profile sum ``cover`` reaches
+    ``min_coverage``; the others are decoupled and flagged. Returns flux, diagonal
+    variance (frame, trace, x) and the coverage flags (x, trace, frame)."""
+    good = cover >= min_coverage
+    sums = [np.where(good, sums[0], 1.0)] + [
+        np.where(good & np.roll(good, -s, axis=1), sums[s], 0.0) for s in (1, 2)]
+    flux, ivar_diag = _solve_banded(sums, np.where(good, rhs, 0.0))
+    return flux, ivar_diag, good
 
 
 def _fit_dense(d, ok, rn2, prof, window, *, clip, n_iter, min_coverage):
@@ -112,12 +125,7 @@ def _fit_dense(d, ok, rn2, prof, window, *, clip, n_iter, min_coverage):
         w = np.where(okt, 1.0 / var, 0.0)
         sums = [m @ w for m in pp]                                      # (x, trace, frame)
         cover = pt @ okt.astype(float)                                  # usable profile sum
-        good = cover >= min_coverage
-        sums[0] = np.where(good, sums[0], 1.0)
-        for s in (1, 2):
-            sums[s] = np.where(good & np.roll(good, -s, axis=1), sums[s], 0.0)
-        rhs = np.where(good, pt @ (dt * w), 0.0)
-        flux, ivar_diag = _solve_banded(sums, rhs)                      # (frame, trace, x)
+        flux, ivar_diag, good = _solve_covered(sums, pt @ (dt * w), cover, min_coverage)
         model = pt.transpose(0, 2, 1) @ flux.transpose(2, 1, 0)         # (x, y, frame)
         var = rn2.T[:, :, None] + np.maximum(model, 0.0)
         if it < n_iter - 1:
@@ -186,12 +194,8 @@ def _fit_windowed(d, ok, rn2, prof, rows, *, clip, n_iter, min_coverage):
         w = np.where(okw, 1.0 / varw, 0.0)
         sums = [np.einsum("xth,xthf->xtf", pw * near[s], w) for s in (0, 1, 2)]
         cover = np.einsum("xth,xthf->xtf", pw, okw.astype(float))
-        good = cover >= min_coverage
-        sums[0] = np.where(good, sums[0], 1.0)
-        for s in (1, 2):
-            sums[s] = np.where(good & np.roll(good, -s, axis=1), sums[s], 0.0)
-        rhs = np.where(good, np.einsum("xth,xthf->xtf", pw, dw * w), 0.0)
-        flux, ivar_diag = _solve_banded(sums, rhs)                      # (frame, trace, x)
+        flux, ivar_diag, good = _solve_covered(sums, np.einsum("xth,xthf->xtf", pw, dw * w),
+                                               cover, min_coverage)
         fx = np.pad(flux.transpose(2, 1, 0), ((0, 0), (2, 2), (0, 0)))  # (x, trace+4, frame)
         nb = np.stack([fx[:, 2 + k:2 + k + n_t] for k in (-2, -1, 0, 1, 2)], axis=2)
         model = stack @ nb                                 # (x, t, H, 5) @ (x, t, 5, frame)

@@ -369,17 +369,18 @@ def fit_amplitudes(image, trace_y, profile_sigma, *, valid=None):
     return a, model_tr + bkg[None, :]
 
 
-def _window_correction(residual, trace_y, profile_sigma, valid, *, half_width_sigma=3.0):
+def _window_correction(residual, trace_y, profile_sigma, prof, valid, *,
+                       half_width_sigma=3.0):
     """Per-column amplitude correction (n_trace, n_x) that turns a profile-fitted
     amplitude into the flux actually collected within the trace's window.
 
     A least-squares amplitude with a slightly wrong profile width is biased by about
     half the relative width error (a 1% width error: 0.5% flux), differently in every
     trace; the window flux ``sum(image) / sum(profile)`` over rows within
-    ``half_width_sigma`` widths depends on the profile only through its far tails. Here it is computed as the
-    fitted amplitude plus the window sum of the residual (image minus every trace's
-    fitted profile) over the window sum of the profile, which removes the neighbours'
-    share."""
+    ``half_width_sigma`` widths depends on the profile only through its far tails. Here
+    it is computed as the fitted amplitude plus the window sum of the residual (image
+    minus every trace's fitted profile) over the window sum of the profile ``prof``
+    (trace, y, x), which removes the neighbours' share."""
     ty, ts = np.asarray(trace_y, float), np.asarray(profile_sigma, float)
     n_y = residual.shape[0]
     y = np.arange(n_y, dtype=float)[None, :, None]
@@ -397,7 +398,6 @@ def _window_correction(residual, trace_y, profile_sigma, valid, *, half_width_si
     isolated = gap / 2 >= half_width_sigma * ts
     half = (half_width_sigma * ts)[:, None, :]                                   # (k, 1, x)
     win = (np.abs(y - ty[:, None, :]) <= half) & np.asarray(valid, bool)[None]   # (k, y, x)
-    prof = trace_profiles(ty, ts, n_y=n_y)
     norm = np.sum(prof * win, axis=1)
     corr = np.sum(residual[None] * win, axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -436,16 +436,15 @@ def pixel_response(flat, trace_y, profile_sigma, *, valid=None, min_fraction: fl
     amp, model = fit_amplitudes(image, trace_y, profile_sigma, valid=valid)
     # the flat is dark subtracted: its true background is zero, and the fitted constant
     # only soaks up profile-shape errors, so the window flux is taken without it
-    traces_only = np.einsum("kyx,kx->yx", trace_profiles(trace_y, profile_sigma,
-                                                         n_y=image.shape[0]), amp)
-    amp = amp + _window_correction(image - traces_only, trace_y, profile_sigma, valid)
+    prof = trace_profiles(trace_y, profile_sigma, n_y=image.shape[0])
+    traces_only = np.einsum("kyx,kx->yx", prof, amp)
+    amp = amp + _window_correction(image - traces_only, trace_y, profile_sigma, prof, valid)
     if smooth_deg is not None:
         n_x = image.shape[1]
         xs = (np.arange(n_x) - (n_x - 1) / 2) / max((n_x - 1) / 2, 1)
         w = np.where(amp > 0, 1.0, 0.0)
         coeffs, _ = _robust_polyfit(xs, amp, w, min(smooth_deg, n_x - 2))
         smooth = np.stack([npoly.polyval(xs, c) for c in coeffs])
-        prof = trace_profiles(trace_y, profile_sigma, n_y=image.shape[0])
         model = np.einsum("kyx,kx->yx", prof, smooth)    # no background: dark-subtracted flat
         amp = smooth
     lit = (model > min_fraction * model.max(axis=0, keepdims=True)) & valid & (model > 0)
