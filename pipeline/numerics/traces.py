@@ -408,16 +408,17 @@ def pixel_response(flat, trace_y, profile_sigma, *, valid=None, min_fraction: fl
                    smooth_deg: int | None = None):
     """Pixel response (flat field) = lamp flat / smooth model of the traces.
 
-    The smooth model is the fitted profiles times their per-column amplitude
-    (:func:`fit_amplitudes`, corrected to the flux within each trace's window, so a
-    slightly wrong profile width does not bias the trace's throughput: extraction of
-    any frame divided by this response returns the window flux), the amplitude
-    optionally smoothed along x by a
-    polynomial of degree ``smooth_deg`` per trace (then the response also carries
-    each column's mean response, which extraction then removes from the spectra);
-    the response is the ratio where the model exceeds ``min_fraction`` of its
-    column maximum, and exactly 1 elsewhere (too little light to measure; such
-    pixels carry no weight in optimal extraction).
+    Without ``smooth_deg`` the model is :func:`fit_amplitudes`' own (profiles times
+    their per-column least-squares amplitudes plus a constant), so the response holds
+    only the pixel-to-pixel structure within each column. With ``smooth_deg`` the
+    per-column amplitudes are first corrected to the flux within each trace's window
+    (a slightly wrong profile width then does not bias a trace's throughput) and
+    smoothed along x by a polynomial of that degree per trace; the model is the
+    profiles times those, and the response also carries each column's mean response,
+    which extraction then removes from the spectra. The response is the ratio where the
+    model exceeds ``min_fraction`` of its column maximum, and exactly 1 elsewhere (too
+    little light to measure; such pixels carry no weight in optimal extraction).
+    The returned lamp spectrum is the window-corrected amplitude (smoothed if asked).
 
     Parameters
     ----------
