@@ -51,7 +51,7 @@ def run(inputs, params: ReferenceParams) -> dict:
         chunk=params.ft_chunk_frames)
 
 
-STAGE = Stage(name="reference", version="2", params=ReferenceParams, after=("extract",),
+STAGE = Stage(name="reference", version="3", params=ReferenceParams, after=("extract",),
               granularity="exposure", plan=plan, run=run,
               doc="per exposure: FT phase, group delay and SNR; lock-loss and fringe-jump "
                   "selection; phase referencing with metrology; contrast loss")
