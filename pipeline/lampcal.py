@@ -387,16 +387,42 @@ def wavecal_science(raw, dark, flat, *, instrument, setup_name, polmode, window=
     :func:`wavecal_products`."""
     check_raw([raw], kind="lamp-scan", setup=setup_name, polmode=polmode)
     setup, comb = instrument.setup(setup_name), instrument.combiner
-    flux, _ = scan_spectra(raw, dark, flat, instrument=instrument,
-                           frames_per_chunk=frames_per_chunk)
+    flux, var = scan_spectra(raw, dark, flat, instrument=instrument,
+                             frames_per_chunk=frames_per_chunk)
     opd, span = frame_opd(raw.frame_times(), *raw.metrology(), comb.baselines)
     base = comb.output_baseline[np.arange(flux.shape[1]) // setup.n_pol(polmode)]
     guess = np.broadcast_to(setup.nominal_wavelength_m(), flux.shape[1:])
     bw = setup.channel_fwhm_px * setup.dispersion_m_per_px
-    return wavecal_products(flux, opd[:, base, None], span[:, base, None], guess,
-                            max_opd=window * guess ** 2 / bw,
-                            nominal_fwhm_px=setup.channel_fwhm_px, trace_baseline=base,
-                            n_pol=setup.n_pol(polmode), n_baseline=len(comb.baselines), **kw)
+    out = wavecal_products(flux, opd[:, base, None], span[:, base, None], guess,
+                           max_opd=window * guess ** 2 / bw,
+                           nominal_fwhm_px=setup.channel_fwhm_px, trace_baseline=base,
+                           n_pol=setup.n_pol(polmode), n_baseline=len(comb.baselines), **kw)
+    # The combiner calibration fits the same scan: it reads these spectra back instead of
+    # extracting the 1000-odd frames again (float32: 1e-7 relative, far below the photon
+    # noise of a lamp frame). The dark and flat keys say which calibrations made them.
+    out.update(scan_spectra_of(raw, dark, flat, flux, var))
+    return out
+
+
+def scan_spectra_of(raw, dark, flat, flux, var) -> dict:
+    """Outputs holding a scan's extracted spectra (frame, trace, x) and what made them."""
+    return {"scan_flux": Array(flux.astype(np.float32), ("frame", "trace", "x"), "e-",
+                               "optimally extracted spectra of every scan frame"),
+            "scan_var": Array(var.astype(np.float32), ("frame", "trace", "x"), "e2",
+                              "their variances"),
+            "scan_file": str(raw.path), "scan_dark_key": str(getattr(dark, "key", "") or ""),
+            "scan_flat_key": str(getattr(flat, "key", "") or "")}
+
+
+def stored_scan_spectra(wavecal, raw, dark, flat):
+    """(flux, variance) of ``raw`` kept by the wavelength calibration when it extracted
+    the same file with the same dark and flat products (by key), else None."""
+    a = getattr(wavecal, "attrs", {})
+    keys = (str(getattr(dark, "key", "") or ""), str(getattr(flat, "key", "") or ""))
+    if ("scan_flux" not in wavecal or a.get("scan_file") != str(raw.path) or not all(keys)
+            or (a.get("scan_dark_key"), a.get("scan_flat_key")) != keys):
+        return None
+    return (np.asarray(wavecal["scan_flux"], float), np.asarray(wavecal["scan_var"], float))
 
 
 def wavecal_ft(raw, ft_dark, *, instrument, window=0.6, **kw) -> dict:
@@ -553,7 +579,11 @@ def combiner_science(beam_raws, scan, *, dark_beam, dark_scan, flat, wavecal, in
     n_pol = instrument.setup(setup_name).n_pol(polmode)
     kw = dict(instrument=instrument, frames_per_chunk=frames_per_chunk)
     beam = np.stack([np.nanmean(scan_spectra(r, dark_beam, flat, **kw)[0], 0) for r in beams])
-    flux, var = scan_spectra(scan, dark_scan, flat, **kw)
+    stored = stored_scan_spectra(wavecal, scan, dark_scan, flat)
+    if stored is None:          # rounded as stored: the same products either way
+        stored = [a.astype(np.float32).astype(float)
+                  for a in scan_spectra(scan, dark_scan, flat, **kw)]
+    flux, var = stored
     opd, span = frame_opd(scan.frame_times(), *scan.metrology(), instrument.combiner.baselines)
     base = instrument.combiner.output_baseline[np.arange(flux.shape[1]) // n_pol]
     return combiner_products(beam, flux, var, opd[:, base, None], span[:, base, None],

@@ -199,3 +199,34 @@ def test_calibration_truth_command(cal, tmp_path, capsys):
         assert fig["phase_deg_max"] < 1.0 and fig["contrast_rms"] < 0.01, label
         assert fig["unit_vis_amp_rms"] < 0.01 and fig["unit_vis_phase_deg_rms"] < 0.6, label
         assert fig["nominal_vis_amp_rms"] > 3 * fig["unit_vis_amp_rms"], label
+
+
+def test_combiner_reuses_the_wavecal_scan_spectra(cal):
+    """The combiner calibration reads the scan spectra the wavelength calibration kept
+    instead of extracting the scan again; both routes give the same products, and the
+    kept spectra are those of a fresh extraction (to float32 rounding)."""
+    from pipeline.lampcal import combiner_science, scan_spectra, stored_scan_spectra
+    night, work, _, view = cal
+    inst = load_instrument()
+    wcal, comb = view("wavecal", LABEL), view("combiner", LABEL)
+    prov = json.loads(comb.attrs["input_paths"])
+    dark_beam, dark_scan = ProductView(prov["dark_beam"]), ProductView(prov["dark_scan"])
+    flat = view("flat", LABEL)
+    raws = [RawExposure(p) for p in json.loads(comb.attrs["raw_files"])]
+    *beams, scan = raws
+    assert wcal.attrs["scan_file"] == str(scan.path)
+    stored = stored_scan_spectra(wcal, scan, dark_scan, flat)
+    assert stored is not None
+    fresh = scan_spectra(scan, dark_scan, flat, instrument=inst)
+    for kept, new in zip(stored, fresh):
+        np.testing.assert_allclose(kept, new, rtol=1e-6, atol=1e-6 * np.nanmax(np.abs(new)))
+    # another dark (by key) than the one the spectra were made with: not reused
+    assert stored_scan_spectra(wcal, scan, dark_beam, flat) is None or \
+        dark_beam.key == dark_scan.key
+
+    class NoSpectra(dict):               # the wavecal product without its kept spectra
+        attrs = {}
+    bare = NoSpectra({k: wcal[k] for k in ("wave_pixel", "bandwidth_pixel", "wave_grid")})
+    again = combiner_science(beams, scan, dark_beam=dark_beam, dark_scan=dark_scan, flat=flat,
+                             wavecal=bare, instrument=inst, setup_name="low", polmode="joint")
+    np.testing.assert_allclose(again["p2vm"].data, comb["p2vm"], rtol=1e-10, atol=1e-12)
