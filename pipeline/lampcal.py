@@ -22,7 +22,8 @@ import numpy as np
 
 from .errors import BadInput, MissingCalibration
 from .numerics import combiner_model as cm
-from .numerics.extraction import optimal_extract, resample_to_grid
+from .numerics.extraction import (apply_fixed_weights, fixed_weight_extractor, optimal_extract,
+                                  resample_to_grid)
 from .numerics.traces import (combine_valid, detector_response, find_traces, pixel_response,
                               trace_profiles)
 from .numerics.wavelength import (ScanFit, baseline_bandwidth, common_grid,
@@ -158,8 +159,15 @@ def _extraction_setup(dark, flat, instrument):
     return det, master, np.where(good, response, 1.0), good, rn, prof
 
 
-def scan_spectra(raw, dark, flat, *, instrument, frames_per_chunk=16, max_saturated=0.001):
-    """Optimally extracted spectra of every frame of a lamp exposure.
+def scan_spectra(raw, dark, flat, *, instrument, frames_per_chunk=16, max_saturated=0.001,
+                 clip=6.0):
+    """Extracted spectra of every frame of a lamp exposure.
+
+    The lamp is steady, so the extraction weights are fixed from the exposure's mean
+    frame (:func:`numerics.extraction.fixed_weight_extractor`: one matrix product per
+    chunk of frames); frames with saturated or outlying pixels (cosmic rays) are
+    extracted on their own by :func:`numerics.extraction.optimal_extract`. Two passes
+    over the frames, a chunk at a time (bounded memory).
 
     Returns
     -------
@@ -167,8 +175,8 @@ def scan_spectra(raw, dark, flat, *, instrument, frames_per_chunk=16, max_satura
     """
     det, master, response, good, rn, prof = _extraction_setup(dark, flat, instrument)
     core = prof.max(0) > 0.1
-    flux, var = [], []
-    for pix in _chunks(raw, frames_per_chunk):
+
+    def electrons(pix):
         if pix.shape[1:] != master.shape:
             raise BadInput(raw.path, f"frames {pix.shape[1:]} do not match the dark "
                                      f"{_where(dark, 'dark')} {master.shape}")
@@ -179,9 +187,27 @@ def scan_spectra(raw, dark, flat, *, instrument, frames_per_chunk=16, max_satura
                                      "lamp frames must not saturate")
         valid = good & ~sat
         e = np.where(valid, (pix - master) * det.gain_e_per_adu / response, 0.0)
-        ext = optimal_extract(e, prof, read_noise=rn, valid=valid, nan_policy="mask")
-        flux.append(ext.flux)
-        var.append(ext.variance)
+        return e, valid, (sat & good).any(axis=(1, 2))
+
+    total, n = np.zeros(master.shape), 0
+    for pix in _chunks(raw, frames_per_chunk):
+        e, valid, _ = electrons(pix)
+        total += e.sum(axis=0)
+        n += e.shape[0]
+    if n == 0:
+        raise BadInput(raw.path, "no frames")
+    extractor = fixed_weight_extractor(prof, rn ** 2 + np.maximum(total / n, 0.0), valid=good)
+    flux, var = [], []
+    for pix in _chunks(raw, frames_per_chunk):
+        e, valid, saturated = electrons(pix)
+        f, v, suspect = apply_fixed_weights(extractor, e, read_noise=rn, clip=clip)
+        redo = np.flatnonzero(suspect | saturated)
+        if redo.size:
+            ext = optimal_extract(e[redo], prof, read_noise=rn, valid=valid[redo], clip=clip,
+                                  nan_policy="mask")
+            f[redo], v[redo] = ext.flux, ext.variance
+        flux.append(f)
+        var.append(v)
     return np.concatenate(flux), np.concatenate(var)
 
 

@@ -69,6 +69,6 @@ def run(inputs, params: CombinerParams) -> dict:
                             transmission_deg=params.transmission_deg)
 
 
-STAGE = Stage(name="combiner", version="6", params=CombinerParams, after=("dark", "flat", "wavecal"),
+STAGE = Stage(name="combiner", version="7", params=CombinerParams, after=("dark", "flat", "wavecal"),
               granularity="setup", plan=plan, run=run,
               doc="transmissions, contrasts, phase shifts, visibility-to-pixel matrix and inverse")

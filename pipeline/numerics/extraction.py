@@ -36,7 +36,8 @@ from typing import Literal
 
 import numpy as np
 
-__all__ = ["Extracted", "optimal_extract", "resample_to_grid"]
+__all__ = ["Extracted", "optimal_extract", "resample_to_grid", "FixedWeightExtractor",
+           "fixed_weight_extractor", "apply_fixed_weights"]
 
 
 @dataclass(frozen=True)
@@ -325,3 +326,102 @@ def resample_to_grid(spectra, variance, wave_pixel, wave_grid, *, extrapolate_px
     out_var = b0 ** 2 * v[..., tr, idx] + b1 ** 2 * v[..., tr, idx + 1]
     nan = np.nan if not np.iscomplexobj(out) else np.nan + 0j
     return np.where(inside, out, nan), np.where(inside, out_var, np.nan)
+
+
+@dataclass(frozen=True)
+class FixedWeightExtractor:
+    """Linear extraction operator of :func:`fixed_weight_extractor`.
+
+    Attributes
+    ----------
+    operator : ndarray (x, trace, y) -- flux[f, t, x] = sum_y operator[x, t, y] frame[f, y, x]
+    profiles : ndarray (x, trace, y) -- the normalised profiles, column-major
+    covered : ndarray (trace, x), bool -- enough usable profile (else flux NaN)
+    valid : ndarray (y, x), bool -- the pixels used
+    """
+    operator: np.ndarray
+    profiles: np.ndarray
+    covered: np.ndarray
+    valid: np.ndarray
+
+
+def fixed_weight_extractor(profiles, variance, *, valid=None,
+                           min_coverage: float = 0.5) -> FixedWeightExtractor:
+    """Weighted least-squares extraction operator with weights fixed per pixel.
+
+    For a long series of frames of one steady source (a lamp delay scan) the optimal
+    weights 1 / V hardly change from frame to frame: a fringe scales a trace's flux, and
+    so its photon variance, by one factor at all of its pixels in a column, which leaves
+    its weighted mean unchanged. Weights from one reference variance image (read noise
+    plus the series' mean frame) give every frame's fluxes by one batched matrix product
+    instead of an iterative fit per frame; neighbouring traces are solved jointly as in
+    :func:`optimal_extract`.
+
+    Parameters
+    ----------
+    profiles : array_like, shape (n_trace, n_y, n_x), normalised cross-profiles
+    variance : array_like, shape (n_y, n_x), e-^2 -- reference variance (> 0 where valid)
+    valid : array_like of bool, shape (n_y, n_x), optional -- usable pixels
+    min_coverage : float in (0, 1] -- as in :func:`optimal_extract`
+
+    Returns
+    -------
+    FixedWeightExtractor
+    """
+    prof = np.asarray(profiles, float)
+    var = np.asarray(variance, float)
+    if prof.ndim != 3 or var.shape != prof.shape[1:]:
+        raise ValueError(f"profiles (trace, y, x) {prof.shape} and variance (y, x) "
+                         f"{var.shape} must agree")
+    ok = np.ones(var.shape, bool) if valid is None else np.asarray(valid, bool).copy()
+    ok &= np.isfinite(var) & (var > 0)
+    p = prof.transpose(2, 0, 1)                                           # (x, trace, y)
+    w = np.where(ok, 1.0 / np.where(ok, var, 1.0), 0.0).T                 # (x, y)
+    total = p.sum(axis=2)
+    covered = (p * ok.T[:, None, :]).sum(axis=2) >= min_coverage * np.maximum(total, 1e-300)
+    covered &= total > 0
+    pw = p * w[:, None, :] * covered[..., None]                           # (x, trace, y)
+    m = pw @ p.transpose(0, 2, 1)                                         # (x, trace, trace)
+    eye = np.eye(p.shape[1])
+    m = np.where(covered[:, :, None] & covered[:, None, :], m, eye * ~covered[:, :, None])
+    op = np.linalg.solve(m, pw)
+    op[~covered] = np.nan
+    return FixedWeightExtractor(operator=op, profiles=p, covered=covered.T, valid=ok)
+
+
+def apply_fixed_weights(extractor: FixedWeightExtractor, frames, *, read_noise,
+                        clip: float = 6.0):
+    """Fluxes, variances and outlier flags of frames with a :func:`fixed_weight_extractor`.
+
+    Parameters
+    ----------
+    extractor : FixedWeightExtractor
+    frames : array_like, shape (n_frame, n_y, n_x), e- (dark subtracted, divided by the
+        pixel response); pixels the extractor does not use are ignored
+    read_noise : float or array_like broadcastable to (n_y, n_x), e-
+    clip : float -- a frame whose model residual exceeds this many standard deviations
+        at a used pixel where some trace's profile exceeds 1e-3 is flagged (a cosmic ray:
+        extract it with :func:`optimal_extract` instead)
+
+    Returns
+    -------
+    flux, variance : ndarray (frame, trace, x) -- variance from the frame's own model
+        (read noise + max(model, 0), propagated through the operator)
+    suspect : ndarray (frame,), bool
+    """
+    d = np.asarray(frames, float)
+    ok = extractor.valid
+    dx = np.where(ok, d, 0.0).transpose(2, 0, 1)                          # (x, frame, y)
+    op = np.nan_to_num(extractor.operator)
+    flux = dx @ op.transpose(0, 2, 1)                                     # (x, frame, trace)
+    model = flux @ extractor.profiles                                     # (x, frame, y)
+    rn2 = np.broadcast_to(np.asarray(read_noise, float) ** 2, ok.shape).T  # (x, y)
+    vmod = rn2[:, None, :] + np.maximum(model, 0.0)
+    var = vmod @ (op ** 2).transpose(0, 2, 1)                             # (x, frame, trace)
+    near = (extractor.profiles.max(axis=1) > 1e-3) & ok.T                 # (x, y)
+    z2 = np.where(near[:, None, :], (dx - model) ** 2 / vmod, 0.0)
+    suspect = (z2 > clip ** 2).any(axis=(0, 2))
+    bad = ~extractor.covered.T[:, None, :]                                # (x, 1, trace)
+    flux = np.where(bad, np.nan, flux).transpose(1, 2, 0)
+    var = np.where(bad, np.nan, var).transpose(1, 2, 0)
+    return flux, var, suspect
