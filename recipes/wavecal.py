@@ -78,6 +78,6 @@ def run(inputs, params: WavecalParams) -> dict:
                            frames_per_chunk=params.frames_per_chunk, **kw)
 
 
-STAGE = Stage(name="wavecal", version="7", params=WavecalParams, after=("dark", "flat"),
+STAGE = Stage(name="wavecal", version="8", params=WavecalParams, after=("dark", "flat"),
               granularity="setup", plan=plan, run=run,
               doc="effective wavelengths and bandwidths from delay scans, common grid")

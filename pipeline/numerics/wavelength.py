@@ -160,6 +160,15 @@ def fit_fringe_scan(intensity, opd, wave_guess, *, n_block: int = 32, n_iter: in
     n_p = y.shape[1]
     use = np.ones((n_s, n_p)) if max_opd is None else (
         np.abs(o) <= np.broadcast_to(np.asarray(max_opd, float), pshape).reshape(-1)).astype(float)
+    span = None if opd_span is None else np.broadcast_to(
+        np.asarray(opd_span, float), (n_s, *pshape)).reshape(n_s, -1)
+    kept = use.any(axis=1)
+    if not kept.all():      # samples outside every pixel's window (a long scan's wings)
+        y, o, use = y[kept], o[kept], use[kept]
+        span = None if span is None else span[kept]
+        n_s = y.shape[0]
+        if n_s == 0:
+            raise ValueError("no sample lies within max_opd of zero OPD")
     if n_s < 6 * n_block:
         n_block = max(n_s // 6, 4)
     for it in range(n_iter + 1):
@@ -204,18 +213,20 @@ def fit_fringe_scan(intensity, opd, wave_guess, *, n_block: int = 32, n_iter: in
     centre = np.where(curved, -c1 / (2 * np.where(curved, c2, 1.0)), 0.0)
     centre = np.clip(centre, np.where(use > 0, o, np.inf).min(0),
                      np.where(use > 0, o, -np.inf).max(0))
-    span = None if opd_span is None else np.broadcast_to(
-        np.asarray(opd_span, float), (n_s, *pshape)).reshape(n_s, -1)
-    # final step: Gauss-Newton on every sample, in chunks of pixels (bounded memory)
+    # final step: Gauss-Newton on every sample, in chunks of pixels (bounded memory);
+    # pixels ordered by their window, each chunk fitted on the samples it uses only
     out = {k: np.empty(n_p, dtype=complex if k == "z" else float)
            for k in ("sig", "sig_err", "dch", "dch_err", "oc", "z", "z_err")}
     chunk = max(1, 4_000_000 // (7 * n_s))
+    order = np.argsort(np.argmax(use > 0, axis=0), kind="stable")
     for p0 in range(0, n_p, chunk):
-        sl = slice(p0, min(n_p, p0 + chunk))
-        r = _gauss_newton(y[:, sl], o[:, sl], None if span is None else span[:, sl],
-                          sig[sl], dsig_ch[sl], centre[sl], use[:, sl])
+        idx = order[p0:p0 + chunk]
+        rows = np.flatnonzero(use[:, idx].any(axis=1))
+        cut = np.ix_(rows, idx)
+        r = _gauss_newton(y[cut], o[cut], None if span is None else span[cut],
+                          sig[idx], dsig_ch[idx], centre[idx], use[cut])
         for k in out:
-            out[k][sl] = r[k]
+            out[k][idx] = r[k]
     sig = out["sig"]
     wave = 1 / sig
     snr_fit = np.abs(out["z"]) / np.maximum(out["z_err"], 1e-300)
