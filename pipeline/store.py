@@ -90,7 +90,9 @@ def _encode_table(data: np.ndarray):
     return out, unicode
 
 
-def _write_dataset(group, name: str, item):
+def _write_dataset(group, name: str, item, pending: list):
+    """Create dataset ``name``; a dask array's data is appended to ``pending`` as
+    (array, dataset) for one :func:`_store_pending` of all of them."""
     arr = item if isinstance(item, Array) else Array(item, axes=tuple(
         f"dim_{i}" for i in range(np.ndim(item))))
     data = arr.data
@@ -99,10 +101,7 @@ def _write_dataset(group, name: str, item):
         dset = group.create_dataset(name, shape=data.shape, dtype=data.dtype,
                                     chunks=chunks if data.size else None,
                                     compression=COMPRESSION if data.size else None)
-        # Chunk by chunk, in this thread (shared upstream work computed once): memory
-        # stays a few chunks whatever the size.
-        import dask.array as da
-        da.store(data, dset, lock=threading.Lock(), scheduler="synchronous")
+        pending.append((data, dset))
     else:
         data = np.asarray(data)
         unicode = []
@@ -120,6 +119,16 @@ def _write_dataset(group, name: str, item):
     dset.attrs["unit"] = arr.unit
     if arr.doc:
         dset.attrs["doc"] = arr.doc
+
+
+def _store_pending(pending):
+    """Write the dask datasets of one product in one pass, chunk by chunk, in this thread:
+    work they share (e.g. one task feeding several datasets) is computed once, and
+    memory stays a few chunks whatever the size."""
+    if pending:
+        import dask.array as da
+        da.store([d for d, _ in pending], [t for _, t in pending], lock=threading.Lock(),
+                 scheduler="synchronous")
 
 
 def _attr_value(value):
@@ -148,11 +157,13 @@ def write_product(path, outputs: dict, provenance: dict) -> Path:
         with h5py.File(tmp, "w") as f:
             for k, v in provenance.items():
                 f.attrs[k] = _attr_value(v)
+            pending = []
             for name, item in outputs.items():
                 if isinstance(item, Array) or isinstance(item, np.ndarray) or _is_dask(item):
-                    _write_dataset(f, name, item)
+                    _write_dataset(f, name, item, pending)
                 else:
                     f.attrs[name] = _attr_value(item)
+            _store_pending(pending)
             f.flush()
             f.attrs["complete"] = True
         os.replace(tmp, path)
