@@ -54,11 +54,11 @@ from typing import Literal
 
 import numpy as np
 
-from pipeline.numerics.binary_model import (BASELINES, PARAM_NAMES, TRIANGLES,
+from pipeline.numerics.binary_model import (BASELINES, PARAM_NAMES, TRIANGLES, axis_phasors,
                                             binary_observables_batch, flux_ratio_law, grid_chi2,
                                             make_residual, wrap)
 from pipeline.numerics.ellipse import ErrorEllipse, SepPA, correlation, error_ellipse, sep_pa
-from pipeline.skymodel import MAS, fibre_coupling, point_phasor, smearing_envelope
+from pipeline.skymodel import MAS, fibre_coupling, point_phasor
 
 __all__ = ["FLAGS", "Observables", "BinaryFitResult", "fit_binary", "search_grid",
            "refit_batch", "params_to_json", "params_from_json"]
@@ -202,8 +202,11 @@ def _primary_grid(obs, params, ch, *, step, radius, fibre_fwhm_mas):
 
     V = P1 (c1 E1 + f2 c2 E2 Pd) / (c1 + f2 c2) with P1 the primary's phasor, Pd the
     companion's relative one, c the fibre couplings, E the smearing envelopes; only the
-    phase of V enters, and P1 = Px(x1) Py(y1) on the square grid, so the phasors are
-    computed per grid axis."""
+    phase of V enters, so V may be scaled by any positive factor: by E1 (the envelope
+    of path difference o = u x1 + v y1), leaving m = c1 + f2 c2 Pd exp(-k (2 o d + d^2))
+    with d = u dx + v dy (E = exp(-k o^2)). On the square grid P1 = Px(x1) Py(y1), the
+    Gaussian couplings c(x, y) = c(x, 0) c(0, y) and o = u x1 + v y1 are built from
+    per-axis factors."""
     axis = np.arange(-np.ceil(radius / step), np.ceil(radius / step) + 1) * step
     xx, yy = np.meshgrid(axis, axis)
     keep = np.hypot(xx, yy) <= radius
@@ -219,24 +222,37 @@ def _primary_grid(obs, params, ch, *, step, radius, fibre_fwhm_mas):
     p = params.valuesdict()
     dx, dy = p["dra"] * MAS, p["ddec"] * MAS
     f2 = flux_ratio_law(wave, p["flux_ratio"], p["flux_slope"])
-    px = point_phasor(u, v, wave, axis[:, None, None] * MAS, 0.0)           # (axis, bl, wave)
-    py = point_phasor(u, v, wave, 0.0, axis[:, None, None] * MAS)
-    pd = point_phasor(u, v, wave, dx, dy)
-    fwhm = None if fibre_fwhm_mas is None else fibre_fwhm_mas * MAS
+    ax = axis * MAS
+    px, pyz = axis_phasors(u, v, wave, ax, ax)                              # (axis, bl, wave)
+    pyz *= np.conj(z)
+    pd = point_phasor(u, v, wave, dx, dy)                                   # (bl, wave)
+    if fibre_fwhm_mas is None:
+        c1x = c1y = c2x = c2y = np.ones((axis.size, wave.size))
+    else:
+        fwhm = fibre_fwhm_mas * MAS
+        c1x, c1y = (fibre_coupling(ax[:, None], 0.0, wave, fwhm),
+                    fibre_coupling(0.0, ax[:, None], wave, fwhm))           # (axis, wave)
+        c2x, c2y = (fibre_coupling(ax[:, None] + dx, 0.0, wave, fwhm),
+                    fibre_coupling(0.0, ax[:, None] + dy, wave, fwhm))
+    c2x = c2x * f2
+    if bw is not None:
+        # smearing_envelope(o) = exp(-k o^2), k = (pi dsigma)^2 / (4 ln 2)
+        k = (np.pi * np.asarray(bw) / wave ** 2) ** 2 / (4 * np.log(2)) * np.ones(z.shape)
+        d = u * dx + v * dy                                                 # (bl, 1)
+        ox, oy = u * ax[:, None, None], v * ax[:, None, None]               # (axis, bl, 1)
+        pd = pd * np.exp(-k * d ** 2)
     chi2 = np.empty(x1.size)
     chunk = max(1, 30_000 // z.size)
     for s in range(0, x1.size, chunk):
-        sl = slice(s, s + chunk)
-        xa, ya = x1[sl, None, None] * MAS, y1[sl, None, None] * MAS         # (pos, 1, 1)
-        c1 = 1.0 if fwhm is None else fibre_coupling(xa, ya, wave, fwhm)
-        c2 = f2 if fwhm is None else f2 * fibre_coupling(xa + dx, ya + dy, wave, fwhm)
+        jx, jy = ix_all[s:s + chunk], iy_all[s:s + chunk]
+        c1 = (c1x[jx] * c1y[jy])[:, None]                                   # (pos, 1, wave)
+        m = (c2x[jx] * c2y[jy])[:, None] * pd                               # (pos, bl, wave)
         if bw is not None:
-            c1 = c1 * smearing_envelope(u * xa + v * ya, wave, bw)
-            c2 = c2 * smearing_envelope(u * (xa + dx) + v * (ya + dy), wave, bw)
-        m = c1 + c2 * pd                                                    # (pos, bl, wave)
-        vis = px[ix_all[sl]] * py[iy_all[sl]] * m
-        cos_res = (vis.real * z.real + vis.imag * z.imag) / np.maximum(np.abs(m), 1e-300)
-        chi2[sl] = -cos_res.sum((-1, -2))
+            m *= np.exp((-2 * d) * k * (ox[jx] + oy[jy]))
+        m += c1
+        num = px[jx] * pyz[jy]
+        num *= m
+        chi2[s:s + chunk] = -(num.real / np.maximum(np.abs(m), 1e-300)).sum((-1, -2))
     best = int(np.argmin(chi2))
     return float(x1[best]), float(y1[best])
 
@@ -580,25 +596,27 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
                                        derivatives=derivatives, **model_kw)
         return out[:len(parts)], out[3:3 + len(parts)]
 
-    def residual(x, idx):
-        """Residuals (set, point) and the Jacobian (set, free, point) at x."""
+    def normal_equations(x, idx):
+        """chi-square (set,), J^T J (set, free, free) and J^T r (set, free) at x, from the
+        residuals r (set, point) and the Jacobian J (set, free, point); only these small
+        products are kept between iterations."""
         m, dm = model(x, free_names)
         r = [(wrap(d[idx] - mk[:, None]) if ph else d[idx] - mk[:, None]) * s[idx]
              for d, s, mk, ph in zip(data, scale, m, is_phase)]
         jac = [-dk[:, :, None] * s[idx][:, None] for dk, s in zip(dm, scale)]
-        return (np.concatenate([rk.reshape(len(idx), -1) for rk in r], axis=1),
-                np.concatenate([jk.reshape(len(idx), nf, -1) for jk in jac], axis=2))
+        r = np.concatenate([rk.reshape(len(idx), -1) for rk in r], axis=1)
+        jac = np.concatenate([jk.reshape(len(idx), nf, -1) for jk in jac], axis=2)
+        return (np.einsum("ij,ij->i", r, r), jac @ jac.transpose(0, 2, 1),
+                (jac @ r[:, :, None])[..., 0])
 
     everyone = np.arange(n_real)
     x = np.broadcast_to(values0[free], (n_real, nf)).copy()
-    r, jac = residual(x, everyone)
-    chi2 = np.einsum("ij,ij->i", r, r)
+    chi2, jtj_at, grad_at = normal_equations(x, everyone)
     lam, nu = np.full(n_real, 1e-3), np.full(n_real, 2.0)
     n_iter = np.zeros(n_real, int)
     active = everyone
     for _ in range(max_iter):
-        jtj = np.einsum("ikp,ilp->ikl", jac[active], jac[active])
-        grad = np.einsum("ikp,ip->ik", jac[active], r[active])
+        jtj, grad = jtj_at[active], grad_at[active]
         diag = np.maximum(np.einsum("ikk->ik", jtj), 1e-300)[:, :, None] * np.eye(nf)
         gauss_newton = np.linalg.solve(jtj + 1e-12 * diag, grad[..., None])[..., 0]
         # Converged: the undamped step would lower chi-square by less than ftol of it.
@@ -613,16 +631,15 @@ def refit_batch(obs: Observables, start, *, fibre_fwhm_mas: float | None, vis2, 
             longest = np.abs(step[:, is_position]).max(1)
             step = step * np.minimum(1.0, max_step_mas / np.maximum(longest, 1e-300))[:, None]
         x_new = np.clip(x[active] - step, lo, hi)
-        r_new, jac_new = residual(x_new, active)
-        chi2_new = np.einsum("ij,ij->i", r_new, r_new)
+        chi2_new, jtj_new, grad_new = normal_equations(x_new, active)
         better = chi2_new < chi2[active]
         # Gain ratio: actual over predicted decrease of the linearised model.
         predicted = np.einsum("ik,ik->i", step, grad + lam[active, None]
                               * np.einsum("ikk->ik", diag) * step)
         gain = (chi2[active] - chi2_new) / np.maximum(predicted, 1e-300)
         took = active[better]
-        x[took], r[took], jac[took], chi2[took] = (x_new[better], r_new[better],
-                                                   jac_new[better], chi2_new[better])
+        x[took], chi2[took] = x_new[better], chi2_new[better]
+        jtj_at[took], grad_at[took] = jtj_new[better], grad_new[better]
         lam[active] = np.where(better, lam[active] * np.maximum(1 / 3, 1 - (2 * gain - 1) ** 3),
                                lam[active] * nu[active])
         nu[active] = np.where(better, 2.0, 2 * nu[active])

@@ -26,8 +26,8 @@ from pipeline.skymodel import (MAS, binary_visibility, fibre_coupling, point_pha
                                smearing_envelope, uniform_disk_visibility)
 
 __all__ = ["BASELINES", "TRIANGLES", "REF_WAVE_M", "PARAM_NAMES", "flux_ratio_law",
-           "binary_observables", "binary_observables_batch", "grid_chi2", "make_residual",
-           "wrap"]
+           "binary_observables", "binary_observables_batch", "axis_phasors", "grid_chi2",
+           "make_residual", "wrap"]
 
 BASELINES = ((0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3))
 TRIANGLES = ((0, 1, 2), (0, 1, 3), (0, 2, 3), (1, 2, 3))
@@ -113,6 +113,17 @@ def binary_observables(uvw_m, wave_m, *, dra_mas, ddec_mas, flux_ratio, flux_slo
             np.angle(np.mean(vis, axis=0)))
 
 
+def _phasor(u_m, v_m, wave_m, x_rad, y_rad):
+    """:func:`pipeline.skymodel.point_phasor` from the cosine and sine of the real phase
+    -2 pi (u x + v y) / lambda (a complex exponential costs both and more); equal to it
+    to rounding of the phase."""
+    phase = (-2 * np.pi) * (u_m * x_rad + v_m * y_rad) / wave_m
+    out = np.empty(phase.shape, complex)
+    np.cos(phase, out=out.real)
+    np.sin(phase, out=out.imag)
+    return out
+
+
 PARAM_NAMES = ("dra", "ddec", "flux_ratio", "flux_slope", "primary_dra", "primary_ddec",
                "diameter1", "diameter2")
 """Parameters of the binary model (mas, except the flux ratio and its slope)."""
@@ -165,14 +176,14 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
     f2 = ratio * f2_unit
     terms = []                                      # per star: A_k / f_k (P U E), d ln parts
     for name, x, y in (("diameter1", x1, y1), ("diameter2", x2, y2)):
-        vis = point_phasor(u, v, wave, x, y)                        # (set, time, baseline, wave)
+        vis = _phasor(u, v, wave, x, y)                             # (set, time, baseline, wave)
         d = par(name)
         disk = None
         if np.any(d != 0):
             disk = uniform_disk_visibility(u, v, wave, d * MAS)
             vis = vis * disk
         if bandwidth_m is not None:
-            vis = vis * smearing_envelope(u * x + v * y, wave, bandwidth_m)
+            vis *= smearing_envelope(u * x + v * y, wave, bandwidth_m)
         terms.append((vis, x, y, d, disk))
     (p1, *_), (p2, *_) = terms
     den = f1 + f2
@@ -198,7 +209,15 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
     two_pi_i = -2j * np.pi / wave
     ln2 = np.log(2)
 
+    cache = {}
+
     def dln_position(x, y, axis_uv):
+        key = (id(x), axis_uv is u)
+        if key not in cache:
+            cache[key] = _dln_position(x, y, axis_uv)
+        return cache[key]
+
+    def _dln_position(x, y, axis_uv):
         g = two_pi_i * axis_uv                                      # phasor
         if bandwidth_m is not None:
             dsig = np.asarray(bandwidth_m) / wave ** 2
@@ -210,8 +229,8 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
             return g, -8 * ln2 * coord / fwhm ** 2
         return g, 0.0
     a1, a2 = f1 * p1, f2 * p2
-    d_out = []
-    for name in derivatives:
+    d_vis = np.empty((n, len(derivatives)) + vis.shape[1:], complex)  # (set, der, time, ...)
+    for j, name in enumerate(derivatives):
         if name in ("dra", "ddec", "primary_dra", "primary_ddec"):
             axis_uv = u if name in ("dra", "primary_dra") else v
             g2, c2 = dln_position(x2, y2, axis_uv)
@@ -239,12 +258,50 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
             d_den = 0.0
         else:
             raise ValueError(f"unknown parameter {name!r}; known {PARAM_NAMES}")
-        d_vis = (d_num - vis * d_den) / den
-        d_v2 = frame_mean(2 * (vis.real * d_vis.real + vis.imag * d_vis.imag))
-        d_t3 = (frame_mean(bispectrum(vis, d_vis)) / bis_m).imag
-        d_ph = (frame_mean(d_vis) / vis_m).imag
-        d_out.append((d_v2, d_t3, d_ph))
-    return out + tuple(np.stack(x, axis=1) for x in zip(*d_out))
+        np.multiply(vis, d_den, out=d_vis[:, j])
+        np.subtract(d_num, d_vis[:, j], out=d_vis[:, j])
+        d_vis[:, j] /= den
+    # All derivatives at once, (set, der, [time,] row, wave).
+    vis_d, vis_md = vis[:, None], vis_m[:, None]
+    if vis.shape[1] == 1:
+        # conj(V) dV: d|V|^2 = 2 Re(conj(V) dV), d arg V = Im(conj(V) dV) / |V|^2, and
+        # dB / B = d ln V_ij + d ln V_jk + conj(d ln V_ik): the closure phase's derivative
+        # is the signed sum of the three phase derivatives (a +-1 matrix over baselines).
+        prod = np.conj(vis_d[:, :, 0]) * d_vis[:, :, 0]                 # (set, der, bl, wave)
+        d_ph = prod.imag / (vis_md.real ** 2 + vis_md.imag ** 2)
+        signs = np.zeros((len(tri), vis.shape[-2]))
+        for t, (ij, jk, ik) in enumerate(tri):
+            signs[t, ij] += 1
+            signs[t, jk] += 1
+            signs[t, ik] -= 1
+        return out + (2 * prod.real, signs @ d_ph, d_ph)
+    d_v2 = 2 * (vis_d.real * d_vis.real + vis_d.imag * d_vis.imag)
+    d_t3 = (bispectrum(vis_d, d_vis).mean(2) / bis_m[:, None]).imag
+    d_ph = (d_vis.mean(2) / vis_md).imag
+    return out + (d_v2.mean(2), d_t3, d_ph)
+
+
+def axis_phasors(u_m, v_m, wave_m, x_rad, y_rad):
+    """Per-axis factors of the point-source phasor on a rectangular grid of positions.
+
+    exp(-2 pi i (u x + v y) / lambda) = exp(-2 pi i u x / lambda) exp(-2 pi i v y / lambda),
+    so the phasors of every grid point (x_a, y_b) are products of one factor per x value
+    and one per y value (n_x + n_y complex exponentials instead of n_x n_y).
+
+    Parameters
+    ----------
+    u_m, v_m : ndarray, shape (n_baseline, 1), metres
+    wave_m : ndarray, shape (n_wave,), metres
+    x_rad, y_rad : ndarray, shapes (n_x,), (n_y,), radians
+
+    Returns
+    -------
+    px : ndarray, shape (n_x, n_baseline, n_wave), complex: exp(-2 pi i u x / lambda)
+    py : ndarray, shape (n_y, n_baseline, n_wave), complex: exp(-2 pi i v y / lambda)
+    """
+    x = np.asarray(x_rad, float)[:, None, None]
+    y = np.asarray(y_rad, float)[:, None, None]
+    return point_phasor(u_m, v_m, wave_m, x, 0.0), point_phasor(u_m, v_m, wave_m, 0.0, y)
 
 
 def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_mas,
@@ -268,6 +325,12 @@ def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_
     then costs real polynomial evaluations only; positions are processed in chunks of
     ``chunk_positions`` so the working arrays stay in cache.
 
+    The companion's factors are built from per-axis pieces of the distinct dRA and
+    dDec values (a square grid has few): phasors (:func:`axis_phasors`), fibre
+    coupling (a Gaussian: exp(-k (x^2 + y^2)) = exp(-k x^2) exp(-k y^2)) and the
+    smearing envelope's path difference u x + v y; only the envelope's exponential is
+    evaluated per position.
+
     Parameters
     ----------
     vis2, vis2_err : ndarray, shape (n_pol, n_baseline, n_wave)
@@ -278,6 +341,12 @@ def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_
     flux_ratios : ndarray, shape (n_ratio,), trial flux ratios (grey)
     diameters_mas : (float, float), uniform-disk diameters of primary and companion, mas
     A NaN ``vis2_err`` (or ``t3phi_err``) excludes that observable from the sum.
+
+    The closure-phase sums of all trial ratios are evaluated in float32 (relative
+    rounding ~1e-7 of the sums, enough to rank the ratios); each position's best ratio
+    is then evaluated again in float64, and no other entry of its row is left below
+    that value. So ``chi2.min(1)`` is the float64 chi-square (to rounding) and the
+    other entries are accurate to ~1e-5 relative.
 
     Returns
     -------
@@ -298,59 +367,126 @@ def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_
     fwhm = None if fibre_fwhm_mas is None else fibre_fwhm_mas * MAS
     x1, y1 = primary_dra_mas * MAS, primary_ddec_mas * MAS
 
-    def star(x, y, diameter_mas):
-        """Fibre coupling (..., 1, wave) and visibility factor (..., baseline, wave)."""
-        coupling = (np.ones_like(wave) if fwhm is None
-                    else fibre_coupling(x, y, wave, fwhm))
-        vis = point_phasor(u, v, wave, x, y)
-        if diameter_mas:
-            vis = vis * uniform_disk_visibility(u, v, wave, diameter_mas * MAS)
-        if bandwidth_m is not None:
-            vis = vis * smearing_envelope(u * x + v * y, wave, bandwidth_m)
-        return coupling, vis
+    coupling1 = np.ones_like(wave) if fwhm is None else fibre_coupling(x1, y1, wave, fwhm)
+    v1 = point_phasor(u, v, wave, x1, y1)
+    if diameters_mas[0]:
+        v1 = v1 * uniform_disk_visibility(u, v, wave, diameters_mas[0] * MAS)
+    if bandwidth_m is not None:
+        v1 = v1 * smearing_envelope(u * x1 + v * y1, wave, bandwidth_m)
+    a = coupling1 * v1                                                    # (baseline, wave)
+    f1 = coupling1                                                        # (wave,)
 
-    f1, v1 = star(x1, y1, diameters_mas[0])
-    a = f1 * v1                                                           # (baseline, wave)
-    p0 = np.abs(a) ** 2
+    # Companion: per-axis factors of the distinct offsets.
+    xs, ix = np.unique(dra, return_inverse=True)
+    ys, iy = np.unique(ddec, return_inverse=True)
+    ax_x, ax_y = x1 + xs * MAS, y1 + ys * MAS                             # (n_x,), (n_y,)
+    px, py = axis_phasors(u, v, wave, ax_x, ax_y)                         # (n_x|n_y, bl, wave)
+    if diameters_mas[1]:
+        px = px * uniform_disk_visibility(u, v, wave, diameters_mas[1] * MAS)
+    if fwhm is None:
+        cx, cy = np.ones((xs.size, wave.size)), np.ones((ys.size, wave.size))
+    else:
+        cx = fibre_coupling(ax_x[:, None], 0.0, wave, fwhm)               # (n_x, wave)
+        cy = fibre_coupling(0.0, ax_y[:, None], wave, fwhm)
+    if bandwidth_m is not None:
+        # smearing_envelope(opd) = exp(-kappa opd^2), kappa = (pi dsigma)^2 / (4 ln 2)
+        dsig = np.asarray(bandwidth_m) / wave ** 2
+        kappa = -(np.pi * dsig) ** 2 / (4 * np.log(2)) * np.ones((u.size, wave.size))
+        ox, oy = u * ax_x[:, None, None], v * ax_y[:, None, None]         # (n_x|n_y, bl, 1)
+
+    p0 = a.real ** 2 + a.imag ** 2
     A0 = (W2 * p0 ** 2).sum(0)                                            # (wave,)
     B0 = (S2 * p0).sum(0)
     a_ij, a_jk, a_ik = a[tri[:, 0]], a[tri[:, 1]], np.conj(a[tri[:, 2]])
     z_conj = np.conj(Zt)
+    e0 = (a_ij * a_jk * a_ik * z_conj).real                               # (triangle, wave)
+    W2p0 = W2 * p0
     q_total = Q2.sum()
     t_total = 2 * wt.sum()
-    out = np.empty((dra.size, ratios.size))
+    n_r = ratios.size
+    rr = ratios[:, None]                                                  # (ratio, 1)
+    out = np.empty((dra.size, n_r))
     for s in range(0, dra.size, chunk_positions):
-        x2 = x1 + dra[s:s + chunk_positions, None, None] * MAS             # (pos, 1, 1)
-        y2 = y1 + ddec[s:s + chunk_positions, None, None] * MAS
-        c, v2 = star(x2, y2, diameters_mas[1])
-        c = c[:, 0]                                                       # (pos, wave)
-        b = c[:, None] * v2                                               # (pos, baseline, wave)
+        jx, jy = ix[s:s + chunk_positions], iy[s:s + chunk_positions]
+        c = cx[jx] * cy[jy]                                               # (pos, wave)
+        b = px[jx] * py[jy]                                               # (pos, baseline, wave)
+        if bandwidth_m is not None:
+            opd = ox[jx] + oy[jy]                                         # (pos, baseline, 1)
+            env = np.exp(kappa * opd ** 2)                                # (pos, baseline, wave)
+            b *= env
+        b *= c[:, None]
         p1 = 2 * (a.real * b.real + a.imag * b.imag)
         p2 = b.real ** 2 + b.imag ** 2
         # V2: sum_bl W m^2 = (sum_k A_k r^k) / den^4, sum_bl S m = (sum_k B_k r^k) / den^2
-        A1 = 2 * np.einsum("bw,pbw->pw", W2 * p0, p1)
+        A1 = 2 * np.einsum("bw,pbw->pw", W2p0, p1)
         A2 = np.einsum("bw,pbw->pw", W2, p1 ** 2 + 2 * p0 * p2)
         A3 = 2 * np.einsum("bw,pbw,pbw->pw", W2, p1, p2)
         A4 = np.einsum("bw,pbw->pw", W2, p2 ** 2)
         B1 = np.einsum("bw,pbw->pw", S2, p1)
         B2 = np.einsum("bw,pbw->pw", S2, p2)
+        # All ratios at once, (pos, ratio, wave): den2 (den2 P4(r) - 2 P2(r)), Horner, in place.
+        den2 = c[:, None, :] * rr
+        den2 += f1
+        np.square(den2, out=den2)
+        np.reciprocal(den2, out=den2)
+        poly = A4[:, None] * rr
+        for coef in (A3, A2, A1):
+            poly += coef[:, None]
+            poly *= rr
+        poly += A0
+        poly *= den2
+        poly2 = B2[:, None] * rr
+        poly2 += B1[:, None]
+        poly2 *= rr
+        poly2 += B0
+        poly2 *= 2
+        poly -= poly2
+        poly *= den2
+        v2_sum = poly.sum(-1)
         # Closure phases: N_ij N_jk conj(N_ik) = g0 + g1 r + g2 r^2 + g3 r^3, projected on Z
         b_ij, b_jk, b_ik = b[:, tri[:, 0]], b[:, tri[:, 1]], np.conj(b[:, tri[:, 2]])
-        g = (a_ij * a_jk * a_ik,
-             b_ij * a_jk * a_ik + a_ij * b_jk * a_ik + a_ij * a_jk * b_ik,
-             b_ij * b_jk * a_ik + b_ij * a_jk * b_ik + a_ij * b_jk * b_ik,
-             b_ij * b_jk * b_ik)
-        e0, e1, e2, e3 = ((gk * z_conj).real for gk in g)      # (pos, triangle, wave); e0 (triangle, wave)
-        for k, r in enumerate(ratios):
-            den2 = 1.0 / (f1 + r * c) ** 2                                # (pos, wave)
-            v2_sum = (den2 ** 2 * (A0 + r * (A1 + r * (A2 + r * (A3 + r * A4))))
-                      - 2 * den2 * (B0 + r * (B1 + r * B2))).sum(-1)
-            q = p0 + r * (p1 + r * p2)                                    # |N|^2 per baseline
-            mod = np.sqrt(q[:, tri[:, 0]] * q[:, tri[:, 1]] * q[:, tri[:, 2]])
-            num = e0 + r * (e1 + r * (e2 + r * e3))
-            cp_sum = (num / np.maximum(mod, 1e-300)).sum((-1, -2))
-            out[s:s + chunk_positions, k] = v2_sum + q_total + t_total - 2 * cp_sum
+        bjk_aik, ajk_bik, bjk_bik = b_jk * a_ik, a_jk * b_ik, b_jk * b_ik
+        ajk_aik = a_jk * a_ik
+        e1 = ((b_ij * ajk_aik + a_ij * (bjk_aik + ajk_bik)) * z_conj).real
+        e2 = ((b_ij * (bjk_aik + ajk_bik) + a_ij * bjk_bik) * z_conj).real
+        e3 = (b_ij * bjk_bik * z_conj).real                               # (pos, triangle, wave)
+        # Every trial ratio in float32 (the cosines need ~1e-7 only to rank the ratios),
+        # then the best ratio of each position again in float64.
+        cp_sum = np.empty((len(jx), n_r))
+        p32 = [x.astype(np.float32) for x in (p0, p1, p2)]
+        e32 = [x.astype(np.float32) for x in (e0, e1, e2, e3)]
+        for k, r in enumerate(ratios.astype(np.float32)):
+            cp_sum[:, k] = _cp_projection(*p32, *e32, r, tri)
+        total = v2_sum + q_total + t_total
+        best = np.argmin(total - 2 * cp_sum, axis=1)
+        rb = ratios[best][:, None, None]                                  # (pos, 1, 1)
+        rows = np.arange(len(jx))
+        cp_sum[rows, best] = _cp_projection(p0, p1, p2, e0, e1, e2, e3, rb, tri)
+        chunk = total - 2 * cp_sum
+        # No float32 value below the float64 minimum (they tie within rounding).
+        out[s:s + chunk_positions] = np.maximum(chunk, chunk[rows, best][:, None])
     return out
+
+
+def _cp_projection(p0, p1, p2, e0, e1, e2, e3, r, tri):
+    """sum over (triangle, wave) of Re(conj(Z) B) / |B| for the bispectrum numerator
+    B = N_ij N_jk conj(N_ik), |N|^2 = p0 + r p1 + r^2 p2 per baseline and
+    Re(conj(Z) B) = e0 + r e1 + r^2 e2 + r^3 e3; r a scalar or (pos, 1, 1). Shape (pos,)."""
+    q = p1 + r * p2
+    q *= r
+    q += p0                                                               # |N|^2 per baseline
+    mod = q[:, tri[:, 0]] * q[:, tri[:, 1]]
+    mod *= q[:, tri[:, 2]]
+    np.sqrt(mod, out=mod)
+    np.maximum(mod, 1e-30 if mod.dtype == np.float32 else 1e-300, out=mod)
+    num = e3 * r
+    num += e2
+    num *= r
+    num += e1
+    num *= r
+    num += e0
+    num /= mod
+    return num.reshape(len(num), -1) @ np.ones(num[0].size, num.dtype)
 
 
 def make_residual(obs, *, fibre_fwhm_mas, vis2, t3phi, visphi, weight):
