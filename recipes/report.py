@@ -37,20 +37,22 @@ def plan(inventory: Inventory, params: ReportParams, upstream) -> list[Unit]:
 
 def run(inputs, params: ReportParams) -> dict:
     prods = inputs.products
-    binaries = sorted((v for r, v in prods.items() if r.startswith("binary:")),
-                      key=lambda v: v.attrs.get("mjd", 0.0))
-    if not binaries:
+    fitted = sorted(((v.attrs, v) for r, v in prods.items() if r.startswith("binary:")),
+                    key=lambda av: av[0].get("mjd", 0.0))     # attributes read once
+    if not fitted:
         raise NothingToDo("no science exposure was fitted")
+    attrs, binaries = [a for a, _ in fitted], [v for _, v in fitted]
     qc = {s: [v for r, v in prods.items() if r.startswith(s + ":")] for s in QC_STAGES}
-    table = astrometry_table([row_from_binary(v.attrs) for v in binaries],
-                             code_version=__version__,
-                             config=config_hash(v.key for v in binaries), flag_doc=FLAG_DOC)
+    table = astrometry_table([row_from_binary(a) for a in attrs], code_version=__version__,
+                             config=config_hash(a.get("key", "") for a in attrs),
+                             flag_doc=FLAG_DOC)
     path = build_report(inputs.workdir / "report", binaries, table=table, qc=qc,
-                        title=params.title, failed=sorted(inputs.failed.values()))
+                        title=params.title, failed=sorted(inputs.failed.values()),
+                        binary_attrs=attrs)
     return {"index_html": str(path), "n_exposures": len(binaries),
             "failed_inputs": "\n".join(sorted(inputs.failed.values()))}
 
 
-STAGE = Stage(name="report", version="1", params=ReportParams, after=("binary",),
+STAGE = Stage(name="report", version="2", params=ReportParams, after=("binary",),
               granularity="night", plan=plan, run=run, partial=True,
               doc="QC report: uv coverage, V2/closure phases with model, chi2 maps, astrometry")

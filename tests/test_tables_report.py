@@ -202,3 +202,168 @@ def test_tiny_night_flux_ratio_end_to_end(tiny_reduced):
     _, _, fits = tiny_reduced
     for a, t in fits:
         assert abs(a["flux_ratio"] - t["flux_ratio"]) < 3 * a["flux_ratio_err"]
+
+
+# ---------------------------------------------------------------- report figure cache
+
+def _variant(view, path, attrs=None, point=None):
+    """A copy of a product with some attributes replaced and/or one array element moved
+    (``point`` = (dataset, index, added value))."""
+    import shutil
+
+    import h5py
+    shutil.copyfile(view.path, path)
+    with h5py.File(path, "r+") as f:
+        for k, v in (attrs or {}).items():
+            f.attrs[k] = v
+        if point is not None:
+            name, index, delta = point
+            data = f[name][()]
+            data[index] += delta
+            f[name][...] = data
+    return ProductView(path)
+
+
+def _count_exposure_draws(monkeypatch):
+    from pipeline import report as rep
+    drawn = []
+    draw = rep._ExposureFigure.draw
+
+    def counting(self, d):
+        drawn.append(d["attrs"]["exposure"])
+        return draw(self, d)
+    monkeypatch.setattr(rep._ExposureFigure, "draw", counting)
+    return drawn
+
+
+def _pixels(fig):
+    import matplotlib.image
+    from io import BytesIO
+    buf = BytesIO()
+    fig.savefig(buf, dpi=90, format="png")
+    buf.seek(0)
+    return matplotlib.image.imread(buf)
+
+
+def test_reused_exposure_figure_draws_what_a_fresh_one_draws(night, tmp_path):
+    # The reference is the figure drawn from scratch: redrawing another exposure on a
+    # used figure must leave nothing of the previous one (limits, colours, colour bars,
+    # runner-up marker, legends).
+    from pipeline import report as rep
+    _, views, _ = night
+    other = _variant(views[2], tmp_path / "other.h5",
+                     attrs={"runner_up_dra": np.nan, "chi2_red": 3.5})
+    inputs = [rep._exposure_inputs(v, v.attrs) for v in (views[0], other)]
+    fresh = rep._ExposureFigure()
+    expected = _pixels(fresh.draw(inputs[0]))
+    fresh.close()
+    used = rep._ExposureFigure()
+    previous = _pixels(used.draw(inputs[1]))
+    again = _pixels(used.draw(inputs[0]))
+    used.close()
+    assert previous.shape == expected.shape and np.abs(previous - expected).max() > 0
+    np.testing.assert_array_equal(again, expected)
+
+
+def test_figure_key_covers_every_drawn_value(night):
+    # Each array element and each printed attribute the figure is drawn from enters the
+    # key: moving any one of them by one floating-point step (numpy.nextafter) gives a
+    # new key, so the cache cannot serve a figure of other values.
+    from pipeline import report as rep
+    _, views, _ = night
+    d = rep._exposure_inputs(views[0], views[0].attrs)
+    key = rep.figure_key("exposure", d)
+    assert rep.figure_key("exposure", rep._exposure_inputs(views[0], views[0].attrs)) == key
+    rng = np.random.default_rng(3)
+    for name, value in d.items():
+        if name == "attrs":
+            continue
+        moved = {**d, name: value.copy()}
+        i = tuple(rng.integers(0, n) for n in value.shape)
+        moved[name][i] = np.nextafter(moved[name][i], np.inf)
+        assert rep.figure_key("exposure", moved) != key, name
+    for name, value in d["attrs"].items():
+        new = value + "x" if isinstance(value, str) else (
+            value + 1 if isinstance(value, int) else np.nextafter(value, np.inf))
+        assert rep.figure_key("exposure", {**d, "attrs": {**d["attrs"], name: new}}) != key
+    assert rep.figure_key("night", d) != key
+
+
+def test_report_redraws_exactly_the_figures_whose_values_changed(night, tmp_path,
+                                                                  monkeypatch):
+    import os
+
+    from pipeline import report as rep
+    _, views, _ = night
+    out = tmp_path / "report"
+    names = [f"exposure_{k:03d}.png" for k in range(3)]
+    drawn = _count_exposure_draws(monkeypatch)
+
+    def build(vs):
+        drawn.clear()
+        rep.build_report(out, vs)
+        page = (out / "index.html").read_text()
+        assert all(f'src="{n}"' in page for n in names)
+        return [e for e in drawn], {n: os.stat(out / n) for n in names}, {
+            n: (out / n).read_bytes() for n in names}
+
+    first, st0, png0 = build(views)
+    assert len(first) == 3
+    # Products whose only change the figures do not show (their content key, as after
+    # a rerun of the fit with a flag threshold that flips no flag): nothing is drawn and
+    # the report's files are the same files (same inode, same modification time).
+    rekeyed = [_variant(v, tmp_path / f"k{k}.h5", attrs={"key": f"other-{k}"})
+               for k, v in enumerate(views)]
+    again, st1, _ = build(rekeyed)
+    assert again == []
+    for n in names:
+        assert (st1[n].st_ino, st1[n].st_mtime_ns) == (st0[n].st_ino, st0[n].st_mtime_ns)
+    # A changed best-fit position (printed and plotted) and a changed flag (printed)
+    # redraw those two exposures only; the third is the same file.
+    moved = _variant(views[0], tmp_path / "dra.h5", attrs={"dra": views[0].attrs["dra"] + 0.5})
+    flagged = _variant(views[1], tmp_path / "flag.h5", attrs={"flag": 8})
+    changed, st2, png2 = build([moved, flagged, views[2]])
+    assert changed == [views[0].attrs["exposure"], views[1].attrs["exposure"]]
+    for n in names[:2]:
+        assert st2[n].st_ino != st0[n].st_ino and png2[n] != png0[n]
+    assert st2[names[2]].st_ino == st0[names[2]].st_ino
+    # One squared visibility moved: that exposure alone is redrawn.
+    point = _variant(views[2], tmp_path / "v2.h5", point=("vis2", (0, 0, 0), 0.05))
+    changed, st3, png3 = build([moved, flagged, point])
+    assert changed == [views[2].attrs["exposure"]] and png3[names[2]] != png0[names[2]]
+    assert [st3[n].st_ino for n in names[:2]] == [st2[n].st_ino for n in names[:2]]
+    # Cache entries the report no longer shows are gone; each figure is one entry (the
+    # exposures' three, and the frame-rejection figure from the binaries' attributes).
+    cached = sorted(p.name for p in (out / rep.CACHE_DIR).glob("exposure-*"))
+    assert len(cached) == 3 and len(list((out / rep.CACHE_DIR).iterdir())) == 4
+    assert {os.stat(out / rep.CACHE_DIR / c).st_ino for c in cached} == {
+        st3[n].st_ino for n in names}
+    # A new version of the drawing code redraws everything.
+    monkeypatch.setattr(rep, "FIGURE_CODE_VERSION", rep.FIGURE_CODE_VERSION + 1)
+    changed, _, _ = build([moved, flagged, point])
+    assert len(changed) == 3
+
+
+def test_report_stage_rerun_draws_nothing(night, instrument, tmp_path, monkeypatch):
+    # The whole stage twice on the same products: the second run draws no figure (the
+    # exposure figures, the night's astrometry and the calibration QC are all reused).
+    from pipeline import report as rep
+    work, views, qc = night
+    prods = {f"binary:{k}": v for k, v in enumerate(views)}
+    prods.update({f"{s}:0": v for s, v in qc.items()})
+    unit = Unit(label="night", needs={f"binary:{k}": ("binary", "x") for k in range(3)})
+    drawn = _count_exposure_draws(monkeypatch)
+    figures = []
+    for name in ("_draw_night", "_draw_qc"):
+        monkeypatch.setattr(rep, name, lambda d, f=getattr(rep, name), n=name:
+                            figures.append(n) or f(d))
+    for _ in range(2):
+        drawn.clear(), figures.clear()
+        report.run(Inputs(unit=unit, raw=[], products=prods, instrument=instrument,
+                          workdir=tmp_path), report.ReportParams())
+        pngs = sorted(p.name for p in (tmp_path / "report").glob("*.png"))
+        assert pngs == ["calibration_qc.png"] + [f"exposure_{k:03d}.png" for k in range(3)] + [
+            "night_astrometry.png"]
+        if _ == 0:
+            assert len(drawn) == 3 and sorted(figures) == ["_draw_night", "_draw_qc"]
+    assert drawn == [] and figures == []
