@@ -19,14 +19,21 @@ anything mapping names to arrays works (tests pass dicts).
 
 from __future__ import annotations
 
+import inspect
+import os
+import threading
+
 import numpy as np
 
 from .errors import BadInput
 from .numerics.coherent_flux import counts_to_rate, invert_combiner, traces_to_outputs
-from .numerics.darks import master_dark
+from .numerics.darks import clipped_stack, master_dark, robust_centre, robust_scale
 from .numerics.extraction import optimal_extract, resample_to_grid
 from .numerics.traces import trace_profiles
 from .stage import Array
+
+# the master-dark estimator's floor on the clipping scale (numerics.darks.master_dark)
+_SCALE_FLOOR = inspect.signature(master_dark).parameters["scale_floor"].default
 
 __all__ = ["sky_background", "extract_science", "extract_ft", "exposure_facts"]
 
@@ -70,12 +77,36 @@ def _extraction_weights(flux, profiles, var_pix, valid):
 
 
 def sky_background(raw, *, frames_per_chunk: int = 16, kappa: float = 5.0) -> np.ndarray:
-    """Clipped mean (the master-dark estimator) of a sky exposure's frames, (y, x), ADU
-    (bias, dark and sky included)."""
-    pix = raw.science_pixels(frames_per_chunk)
+    """Clipped mean (the master-dark estimator, :func:`numerics.darks.clipped_stack`) of a
+    sky exposure's frames, (y, x), ADU (bias, dark and sky included).
+
+    Every on-sky exposure of a sequence subtracts the same sky: the result is kept per
+    file (path, size, modification time) and parameters, so a process computes it once;
+    callers must not modify it (it is returned read-only)."""
     if raw.nframe < 2:
         raise BadInput(raw.path, "a sky background needs at least 2 frames")
-    return master_dark(lambda: _blocks(pix), dit=raw.dit, kappa=kappa).master
+    st = os.stat(raw.path)
+    key = (str(raw.path), st.st_size, st.st_mtime_ns, int(frames_per_chunk), float(kappa))
+    with _SKY_LOCK:
+        if key in _SKY_CACHE:
+            return _SKY_CACHE[key]
+    pix = raw.science_pixels(frames_per_chunk)
+
+    def source():
+        return _blocks(pix)
+    centre, _ = robust_centre(source())
+    master, _, _ = clipped_stack(source(), centre, robust_scale(source(), centre), kappa=kappa,
+                                 scale_floor=_SCALE_FLOOR)
+    master.setflags(write=False)
+    with _SKY_LOCK:
+        _SKY_CACHE[key] = master
+        while len(_SKY_CACHE) > 8:                     # a night has a few skies
+            _SKY_CACHE.pop(next(iter(_SKY_CACHE)))
+    return master
+
+
+_SKY_CACHE: dict = {}
+_SKY_LOCK = threading.Lock()
 
 
 def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, background=None,

@@ -409,3 +409,25 @@ def test_extraction_weights_reproduce_optimal_extraction(rng):
     measured = np.var(shifts, axis=0)
     # 200 draws x 40 values: the mean variance is known to ~2 %; allow 6 %
     np.testing.assert_allclose(measured.mean(), predicted.mean(), rtol=0.06)
+
+
+def test_sky_background_is_the_master_dark_estimator_and_computed_once(tiny_night, tmp_path):
+    """The sky subtracted from every on-sky exposure is the clipped mean of the master-dark
+    estimator (numerics.darks.master_dark), computed once per file and process; a file
+    that changes is read again."""
+    import os
+    import shutil
+    from pipeline.extract_frames import _blocks, sky_background
+    from pipeline.numerics.darks import master_dark
+    sky_path = tmp_path / next(Path(tiny_night).glob("*_sky_*.fits")).name
+    shutil.copy(next(Path(tiny_night).glob("*_sky_*.fits")), sky_path)
+    raw = RawExposure(sky_path)
+    pix = raw.science_pixels(16)
+    expected = master_dark(lambda: _blocks(pix), dit=raw.dit).master
+    first = sky_background(raw)
+    np.testing.assert_array_equal(first, expected)
+    assert sky_background(RawExposure(sky_path)) is first            # kept, not recomputed
+    assert not first.flags.writeable
+    st = os.stat(sky_path)
+    os.utime(sky_path, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))  # touched: read again
+    assert sky_background(RawExposure(sky_path)) is not first
