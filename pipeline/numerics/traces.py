@@ -58,6 +58,13 @@ class TraceFit:
     centre_residual_rms: np.ndarray
 
 
+def _pix_gauss_value(y, c, s):
+    """Pixel-integrated unit Gaussian (the value of :func:`_pix_gauss` alone). Broadcasts."""
+    up = (y + 0.5 - c) / s
+    um = (y - 0.5 - c) / s
+    return 0.5 * (erf(up / _SQRT2) - erf(um / _SQRT2))
+
+
 def _pix_gauss(y, c, s):
     """Pixel-integrated unit Gaussian and its derivatives wrt c and s. Broadcasts."""
     up = (y + 0.5 - c) / s
@@ -86,7 +93,7 @@ def trace_profiles(trace_y, profile_sigma, *, n_y: int) -> np.ndarray:
     ty = np.asarray(trace_y, float)[:, None, :]
     ts = np.asarray(profile_sigma, float)[:, None, :]
     y = np.arange(n_y, dtype=float)[None, :, None]
-    return _pix_gauss(y, ty, ts)[0]
+    return _pix_gauss_value(y, ty, ts)
 
 
 def _check_image(image, valid, name="image"):
@@ -102,6 +109,20 @@ def _check_image(image, valid, name="image"):
     return np.where(valid, image, 0.0), valid
 
 
+def _linear_amplitudes(image, valid, prof):
+    """Amplitudes (trace, x) and background (x,) of fixed profiles (trace, y, x): joint
+    linear least squares per column (all traces and a constant)."""
+    n_y, n_x = image.shape
+    n_t = prof.shape[0]
+    p = prof.transpose(2, 1, 0)                                                # (x, y, k)
+    jac = np.concatenate([p, np.ones((n_x, n_y, 1))], axis=2)
+    jw = (jac * valid.T.astype(float)[:, :, None]).transpose(0, 2, 1)
+    lhs, rhs = jw @ jac, (jw @ image.T[:, :, None])[..., 0]
+    lhs += 1e-12 * np.trace(lhs, axis1=1, axis2=2)[:, None, None] * np.eye(n_t + 1)
+    sol = np.linalg.solve(lhs, rhs[..., None])[..., 0]
+    return sol[:, :n_t].T, sol[:, n_t]
+
+
 def _column_fit(image, valid, c0, s0, *, n_iter=15, fit_shape=True):
     """Joint least-squares fit, column by column (vectorised over x), of
     background + sum_k a_k P(y; c_k, s_k). Returns a, c, s of shape (trace, x).
@@ -115,14 +136,7 @@ def _column_fit(image, valid, c0, s0, *, n_iter=15, fit_shape=True):
     n_y, n_x = image.shape
     n_t = c0.shape[0]
     if not fit_shape:
-        y = np.arange(n_y, dtype=float)[None, :, None]
-        p = _pix_gauss(y, c0[:, None, :], s0[:, None, :])[0].transpose(2, 1, 0)  # (x, y, k)
-        jac = np.concatenate([p, np.ones((n_x, n_y, 1))], axis=2)
-        jw = (jac * valid.T.astype(float)[:, :, None]).transpose(0, 2, 1)
-        lhs, rhs = jw @ jac, (jw @ image.T[:, :, None])[..., 0]
-        lhs += 1e-12 * np.trace(lhs, axis1=1, axis2=2)[:, None, None] * np.eye(n_t + 1)
-        sol = np.linalg.solve(lhs, rhs[..., None])[..., 0]
-        return sol[:, :n_t].T, c0, s0
+        return _linear_amplitudes(image, valid, trace_profiles(c0, s0, n_y=n_y))[0], c0, s0
     c, s = c0.astype(float).copy(), s0.astype(float).copy()
     h = int(np.ceil(3.5 * max(float(np.max(s0)), 1.0)))
     offs = np.arange(-h, h + 1)
@@ -360,8 +374,8 @@ def fit_amplitudes(image, trace_y, profile_sigma, *, valid=None):
     """
     image, valid = _check_image(image, valid)
     ty, ts = np.asarray(trace_y, float), np.asarray(profile_sigma, float)
-    a, _, _ = _column_fit(image, valid, ty, ts, fit_shape=False)
     prof = trace_profiles(ty, ts, n_y=image.shape[0])
+    a, _ = _linear_amplitudes(image, valid, prof)
     model_tr = np.einsum("kyx,kx->yx", prof, a)
     # background: the least-squares constant of the same fit, recovered from the residual
     w = valid.astype(float)
