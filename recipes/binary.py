@@ -72,6 +72,6 @@ def run(inputs, params: BinaryParams) -> dict:
                           seed=(zlib.crc32(label.encode()) + p.seed) % 2 ** 32)
 
 
-STAGE = Stage(name="binary", version="6", params=BinaryParams, after=("calibrate",),
+STAGE = Stage(name="binary", version="7", params=BinaryParams, after=("calibrate",),
               granularity="exposure", plan=plan, run=run,
               doc="binary fit per science exposure: global search, lmfit, errors, flags")

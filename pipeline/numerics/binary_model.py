@@ -217,7 +217,7 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
             cache[key] = _dln_position(x, y, axis_uv)
         return cache[key]
 
-    def _dln_position(x, y, axis_uv):
+    def _dln_position(x, y, axis_uv):                # per mas
         g = two_pi_i * axis_uv                                      # phasor
         if bandwidth_m is not None:
             dsig = np.asarray(bandwidth_m) / wave ** 2
@@ -226,19 +226,24 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
             fwhm = fibre_fwhm_mas * MAS * wave / REF_WAVE_M
             coord = x if axis_uv is u else y
             g = g - 8 * ln2 * coord / fwhm ** 2                     # coupling (real)
-            return g, -8 * ln2 * coord / fwhm ** 2
-        return g, 0.0
+            return g * MAS, -8 * ln2 * coord / fwhm ** 2 * MAS
+        return g * MAS, 0.0
     a1, a2 = f1 * p1, f2 * p2
+    inv_den = 1.0 / den
+    companion_term = {}                             # a2 d ln(A2) per axis, shared by
+                                                    # the companion's and primary's offsets
     d_vis = np.empty((n, len(derivatives)) + vis.shape[1:], complex)  # (set, der, time, ...)
     for j, name in enumerate(derivatives):
         if name in ("dra", "ddec", "primary_dra", "primary_ddec"):
             axis_uv = u if name in ("dra", "primary_dra") else v
             g2, c2 = dln_position(x2, y2, axis_uv)
-            d_num, d_den = a2 * g2, f2 * c2
+            key = axis_uv is u
+            if key not in companion_term:
+                companion_term[key] = a2 * g2
+            d_num, d_den = companion_term[key], f2 * c2
             if name.startswith("primary"):
                 g1, c1 = dln_position(x1, y1, axis_uv)
                 d_num, d_den = d_num + a1 * g1, d_den + f1 * c1
-            d_num, d_den = d_num * MAS, d_den * MAS
         elif name == "flux_ratio":
             d_num, d_den = f2_unit * p2, f2_unit
         elif name == "flux_slope":
@@ -260,7 +265,7 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
             raise ValueError(f"unknown parameter {name!r}; known {PARAM_NAMES}")
         np.multiply(vis, d_den, out=d_vis[:, j])
         np.subtract(d_num, d_vis[:, j], out=d_vis[:, j])
-        d_vis[:, j] /= den
+        d_vis[:, j] *= inv_den
     # All derivatives at once, (set, der, [time,] row, wave).
     vis_d, vis_md = vis[:, None], vis_m[:, None]
     if vis.shape[1] == 1:
@@ -342,11 +347,11 @@ def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_
     diameters_mas : (float, float), uniform-disk diameters of primary and companion, mas
     A NaN ``vis2_err`` (or ``t3phi_err``) excludes that observable from the sum.
 
-    The closure-phase sums of all trial ratios are evaluated in float32 (relative
-    rounding ~1e-7 of the sums, enough to rank the ratios); each position's best ratio
-    is then evaluated again in float64, and no other entry of its row is left below
-    that value. So ``chi2.min(1)`` is the float64 chi-square (to rounding) and the
-    other entries are accurate to ~1e-5 relative.
+    The closure-phase term (>= 0) is evaluated first at each position's ratio best for
+    V2 alone; a ratio whose V2 chi-square exceeds that total cannot be the position's
+    minimum, and its entry holds its V2 chi-square (a lower bound, above the minimum)
+    instead of the full sum. So ``chi2.min(1)`` and ``chi2.argmin(1)`` are those of
+    the full chi-square; the other ratios' entries are exact.
 
     Returns
     -------
@@ -450,21 +455,27 @@ def grid_chi2(vis2, vis2_err, t3phi, t3phi_err, uvw_m, wave_m, *, dra_mas, ddec_
         e1 = ((b_ij * ajk_aik + a_ij * (bjk_aik + ajk_bik)) * z_conj).real
         e2 = ((b_ij * (bjk_aik + ajk_bik) + a_ij * bjk_bik) * z_conj).real
         e3 = (b_ij * bjk_bik * z_conj).real                               # (pos, triangle, wave)
-        # Every trial ratio in float32 (the cosines need ~1e-7 only to rank the ratios),
-        # then the best ratio of each position again in float64.
-        cp_sum = np.empty((len(jx), n_r))
-        p32 = [x.astype(np.float32) for x in (p0, p1, p2)]
-        e32 = [x.astype(np.float32) for x in (e0, e1, e2, e3)]
-        for k, r in enumerate(ratios.astype(np.float32)):
-            cp_sum[:, k] = _cp_projection(*p32, *e32, r, tri)
-        total = v2_sum + q_total + t_total
-        best = np.argmin(total - 2 * cp_sum, axis=1)
-        rb = ratios[best][:, None, None]                                  # (pos, 1, 1)
+        # The closure-phase chi-square is >= 0, so the V2 chi-square alone bounds each
+        # ratio's total from below: a ratio whose V2 term already exceeds the total at
+        # the V2-best ratio (evaluated first) cannot be the position's minimum and keeps
+        # that bound; only the other ratios' closure-phase sums are evaluated.
         rows = np.arange(len(jx))
-        cp_sum[rows, best] = _cp_projection(p0, p1, p2, e0, e1, e2, e3, rb, tri)
-        chunk = total - 2 * cp_sum
-        # No float32 value below the float64 minimum (they tie within rounding).
-        out[s:s + chunk_positions] = np.maximum(chunk, chunk[rows, best][:, None])
+        chi2_v2 = v2_sum + q_total                                        # (pos, ratio)
+        first = chi2_v2.argmin(1)
+        cp_sum = np.full((len(jx), n_r), t_total / 2)                     # bound: chi2_cp = 0
+        cp_sum[rows, first] = _cp_projection(p0, p1, p2, e0, e1, e2, e3,
+                                             ratios[first][:, None, None], tri)
+        bound = chi2_v2[rows, first] + t_total - 2 * cp_sum[rows, first]
+        need = chi2_v2 <= bound[:, None]
+        need[rows, first] = False
+        for k, r in enumerate(ratios):
+            idx = np.flatnonzero(need[:, k])
+            if idx.size > len(jx) // 2:
+                cp_sum[idx, k] = _cp_projection(p0, p1, p2, e0, e1, e2, e3, r, tri)[idx]
+            elif idx.size:
+                cp_sum[idx, k] = _cp_projection(p0, p1[idx], p2[idx], e0, e1[idx], e2[idx],
+                                                e3[idx], r, tri)
+        out[s:s + chunk_positions] = chi2_v2 + t_total - 2 * cp_sum
     return out
 
 
@@ -478,7 +489,7 @@ def _cp_projection(p0, p1, p2, e0, e1, e2, e3, r, tri):
     mod = q[:, tri[:, 0]] * q[:, tri[:, 1]]
     mod *= q[:, tri[:, 2]]
     np.sqrt(mod, out=mod)
-    np.maximum(mod, 1e-30 if mod.dtype == np.float32 else 1e-300, out=mod)
+    np.maximum(mod, 1e-300, out=mod)
     num = e3 * r
     num += e2
     num *= r
