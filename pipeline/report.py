@@ -86,9 +86,9 @@ _NOT_DRAWING = ("backend", "interactive", "keymap.", "toolbar", "webagg.", "save
 def _style() -> str:
     """matplotlib's version and the rc settings that can change how a figure looks."""
     import matplotlib
-    rc = sorted((k, repr(v)) for k, v in matplotlib.rcParams.items()
-                if not k.startswith(_NOT_DRAWING))
-    return matplotlib.__version__ + repr(rc)
+    rc = matplotlib.rcParams     # (reading "backend" would resolve it: imports pyplot)
+    return matplotlib.__version__ + repr(sorted((k, repr(rc[k])) for k in rc
+                                                if not k.startswith(_NOT_DRAWING)))
 
 
 def figure_key(kind: str, inputs: dict, style: str | None = None) -> str:

@@ -206,9 +206,9 @@ def test_tiny_night_flux_ratio_end_to_end(tiny_reduced):
 
 # ---------------------------------------------------------------- report figure cache
 
-def _variant(view, path, attrs=None, point=None):
-    """A copy of a product with some attributes replaced and/or one array element moved
-    (``point`` = (dataset, index, added value))."""
+def _variant(view, path, attrs=None, point=None, datasets=None):
+    """A copy of a product with some attributes and/or datasets replaced, and/or one
+    array element moved (``point`` = (dataset, index, added value))."""
     import shutil
 
     import h5py
@@ -216,6 +216,9 @@ def _variant(view, path, attrs=None, point=None):
     with h5py.File(path, "r+") as f:
         for k, v in (attrs or {}).items():
             f.attrs[k] = v
+        for k, v in (datasets or {}).items():
+            del f[k]
+            f[k] = v
         if point is not None:
             name, index, delta = point
             data = f[name][()]
@@ -248,11 +251,15 @@ def _pixels(fig):
 def test_reused_exposure_figure_draws_what_a_fresh_one_draws(night, tmp_path):
     # The reference is the figure drawn from scratch: redrawing another exposure on a
     # used figure must leave nothing of the previous one (limits, colours, colour bars,
-    # runner-up marker, legends).
+    # runner-up marker, legends). The other exposure has two polarisations, another
+    # wavelength range and no runner-up.
     from pipeline import report as rep
     _, views, _ = night
+    two = {n: np.concatenate([views[2][n], views[2][n] * 0.98]) for n in
+           ("vis2", "vis2_err", "t3phi", "t3phi_err")}
     other = _variant(views[2], tmp_path / "other.h5",
-                     attrs={"runner_up_dra": np.nan, "chi2_red": 3.5})
+                     attrs={"runner_up_dra": np.nan, "chi2_red": 3.5},
+                     datasets={"wave": views[2]["wave"] * 0.8, **two})
     inputs = [rep._exposure_inputs(v, v.attrs) for v in (views[0], other)]
     fresh = rep._ExposureFigure()
     expected = _pixels(fresh.draw(inputs[0]))
