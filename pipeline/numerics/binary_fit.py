@@ -205,8 +205,8 @@ def _primary_grid(obs, params, ch, *, step, radius, fibre_fwhm_mas):
     phase of V enters, so V may be scaled by any positive factor: by E1 (the envelope
     of path difference o = u x1 + v y1), leaving m = c1 + f2 c2 Pd exp(-k (2 o d + d^2))
     with d = u dx + v dy (E = exp(-k o^2)). On the square grid P1 = Px(x1) Py(y1), the
-    Gaussian couplings c(x, y) = c(x, 0) c(0, y) and o = u x1 + v y1 are built from
-    per-axis factors."""
+    Gaussian couplings c(x, y) = c(x, 0) c(0, y) and exp(-2 k o d) (linear in o in the
+    exponent) are products of per-axis factors."""
     axis = np.arange(-np.ceil(radius / step), np.ceil(radius / step) + 1) * step
     xx, yy = np.meshgrid(axis, axis)
     keep = np.hypot(xx, yy) <= radius
@@ -235,21 +235,22 @@ def _primary_grid(obs, params, ch, *, step, radius, fibre_fwhm_mas):
         c2x, c2y = (fibre_coupling(ax[:, None] + dx, 0.0, wave, fwhm),
                     fibre_coupling(0.0, ax[:, None] + dy, wave, fwhm))
     c2x = c2x * f2
+    # The companion's term per axis: c2 = c2(x) c2(y), exp(-2 k o d) = exp(-2 k u x1 d)
+    # exp(-2 k v y1 d) (linear in o), so m - c1 = gx(x1) gy(y1) with pd in gy.
+    gx = np.broadcast_to(c2x[:, None, :], px.shape)                         # (axis, bl, wave)
+    gy = c2y[:, None, :] * pd
     if bw is not None:
         # smearing_envelope(o) = exp(-k o^2), k = (pi dsigma)^2 / (4 ln 2)
         k = (np.pi * np.asarray(bw) / wave ** 2) ** 2 / (4 * np.log(2)) * np.ones(z.shape)
         d = u * dx + v * dy                                                 # (bl, 1)
-        ox, oy = u * ax[:, None, None], v * ax[:, None, None]               # (axis, bl, 1)
-        pd = pd * np.exp(-k * d ** 2)
+        gx = gx * np.exp(-2 * k * d * (u * ax[:, None, None]))
+        gy = gy * np.exp(-k * d ** 2 - 2 * k * d * (v * ax[:, None, None]))
     chi2 = np.empty(x1.size)
     chunk = max(1, 30_000 // z.size)
     for s in range(0, x1.size, chunk):
         jx, jy = ix_all[s:s + chunk], iy_all[s:s + chunk]
-        c1 = (c1x[jx] * c1y[jy])[:, None]                                   # (pos, 1, wave)
-        m = (c2x[jx] * c2y[jy])[:, None] * pd                               # (pos, bl, wave)
-        if bw is not None:
-            m *= np.exp((-2 * d) * k * (ox[jx] + oy[jy]))
-        m += c1
+        m = gx[jx] * gy[jy]                                                 # (pos, bl, wave)
+        m += (c1x[jx] * c1y[jy])[:, None]
         num = px[jx] * pyz[jy]
         num *= m
         chi2[s:s + chunk] = -(num.real / np.maximum(np.abs(m), 1e-300)).sum((-1, -2))
