@@ -19,6 +19,7 @@ import json
 import os
 import threading
 import uuid
+import zlib
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -31,10 +32,21 @@ __all__ = ["ProductView", "product_path", "failure_path", "write_product", "writ
            "read_failure", "is_complete", "products_of"]
 
 COMPRESSION = "lzf"
-"""Codec of the larger datasets: LZF (shipped with h5py; other HDF5 tools read it with
-the LZF filter plugin). Intermediate products are mostly noisy floats, which gzip shrinks
-by only 7-35% here, at three times LZF's CPU cost (writing is then ~15% of a reduction)."""
+"""Codec of the larger datasets that compress (:func:`worth_compressing`): LZF (shipped
+with h5py; other HDF5 tools read it with the LZF filter plugin). Intermediate products are
+mostly noisy floats, which gzip shrinks by only 7-35% here, at three times LZF's CPU
+cost, and LZF by 0-3%; those are stored as they are."""
 _COMPRESS_ABOVE = 1 << 16       # elements; smaller datasets are stored contiguous
+_COMPRESS_RATIO = 0.8           # compress a dataset only when a sample shrinks below this
+
+
+def worth_compressing(sample) -> bool:
+    """Whether LZF pays for a dataset, judged on a sample of it (its first 256 kB through
+    zlib level 1, the same kind of byte-level LZ77 coder): flags, constant or smooth arrays
+    shrink 10-100x, noisy floats (most of a reduction's bytes) by a few percent at most,
+    not worth the CPU of compressing them."""
+    b = np.ascontiguousarray(sample).reshape(-1).view(np.uint8)[:1 << 18].tobytes()
+    return len(b) > 0 and len(zlib.compress(b, 1)) < _COMPRESS_RATIO * len(b)
 _H5_LOCK = threading.RLock()    # short reads; h5py itself serialises library calls
 
 
@@ -98,9 +110,13 @@ def _write_dataset(group, name: str, item, pending: list):
     data = arr.data
     if _is_dask(data):
         chunks = tuple(max(c) if c else 1 for c in data.chunks)
+        squeeze = False
+        if data.size:                   # judged on the first chunk along the first axis
+            first = data[:data.chunks[0][0]] if data.ndim else data
+            squeeze = worth_compressing(first.compute(scheduler="synchronous"))
         dset = group.create_dataset(name, shape=data.shape, dtype=data.dtype,
                                     chunks=chunks if data.size else None,
-                                    compression=COMPRESSION if data.size else None)
+                                    compression=COMPRESSION if squeeze else None)
         pending.append((data, dset))
     else:
         data = np.asarray(data)
@@ -110,7 +126,7 @@ def _write_dataset(group, name: str, item, pending: list):
         elif data.dtype.kind == "U":
             data = np.char.encode(data, "utf-8")
             unicode = ["__all__"]
-        big = data.size > _COMPRESS_ABOVE and data.ndim > 0
+        big = data.size > _COMPRESS_ABOVE and data.ndim > 0 and worth_compressing(data)
         dset = group.create_dataset(name, data=data, chunks=True if big else None,
                                     compression=COMPRESSION if big else None)
         if unicode:

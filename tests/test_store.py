@@ -34,7 +34,7 @@ def test_round_trip(tmp_path, rng):
         assert f.attrs["complete"] and f.attrs["n_frame"] == 12
         assert json.loads(f["master"].attrs["axes"]) == ["y", "x"]
         assert f["master"].attrs["unit"] == "adu"
-        assert f["master"].compression == "lzf"         # large: chunked + compressed
+        assert f["master"].compression is None          # large but noise: not compressed
         assert f["frames"].chunks == (7, 8, 9)          # dask chunks kept (written per chunk)
         np.testing.assert_array_equal(f["coherent"][()], cplx)
     view = ProductView(path)
@@ -81,3 +81,23 @@ def test_failure_records_and_listing(tmp_path):
     write_product(product_path(tmp_path, "dark", "lbl", "k4"), {"a": np.ones(2)}, {})
     write_product(product_path(tmp_path, "dark", "lbl.v2", "k5"), {"a": np.ones(2)}, {})
     assert [p.name for p in products_of(tmp_path, "dark", "lbl")] == ["lbl.k4.h5"]
+
+
+def test_only_compressible_datasets_are_compressed(tmp_path, rng):
+    # noisy floats (incompressible) are stored as they are; flags and constant arrays,
+    # numpy or dask, are LZF-compressed; every value reads back exactly
+    noisy = rng.normal(size=(300, 400))
+    flags = (rng.random((300, 400)) < 0.01).astype(np.uint8)
+    const = da.full((80000, 6), 2.5, chunks=(4096, 6), dtype=np.float32)
+    noisy_lazy = da.from_array(rng.normal(size=(80000, 6)).astype(np.float32), chunks=(4096, 6))
+    path = write_product(tmp_path / "p.h5", {"noisy": noisy, "flags": flags, "const": const,
+                                             "noisy_lazy": noisy_lazy}, {"stage": "t"})
+    with h5py.File(path) as f:
+        assert f["noisy"].compression is None and f["noisy_lazy"].compression is None
+        assert f["flags"].compression == "lzf" and f["const"].compression == "lzf"
+        assert f["const"].id.get_storage_size() < 0.05 * const.nbytes
+    view = ProductView(path)
+    np.testing.assert_array_equal(view["noisy"], noisy)
+    np.testing.assert_array_equal(view["flags"], flags)
+    np.testing.assert_array_equal(view["const"], np.asarray(const))
+    np.testing.assert_array_equal(view["noisy_lazy"], np.asarray(noisy_lazy))
