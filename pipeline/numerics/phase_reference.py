@@ -131,6 +131,15 @@ def fringe_estimates(ft_coherent, ft_wave, *, ft_coherent_var,
                            wave_ref=float(1.0 / sigma0))
 
 
+def _running_median(a, window: int):
+    """Running median over ``window`` frames of each column of a (n_frame, n_col) array,
+    edges extended ("nearest"). One column at a time: scipy's 1-D median filter is ~6x
+    faster than its N-D one with a (window, 1) footprint, and gives the same values."""
+    a = np.asarray(a, float)
+    return np.stack([median_filter(col, size=window, mode="nearest") for col in a.T], axis=1) \
+        if a.shape[1] else a.copy()
+
+
 def track_opd(phase, group_delay, *, wave_ref: float, window: int = 25) -> np.ndarray:
     """Residual path r_j - r_i of every FT frame from its phase and group delay.
 
@@ -156,7 +165,7 @@ def track_opd(phase, group_delay, *, wave_ref: float, window: int = 25) -> np.nd
         raise ValueError(f"window must be >= 1 frame, found {window}")
     opd_phase = -np.unwrap(np.asarray(phase, float), axis=0) * wave_ref / (2 * np.pi)
     offset = np.asarray(group_delay, float) - opd_phase
-    smooth = median_filter(offset, size=(window, 1), mode="nearest")
+    smooth = _running_median(offset, window)
     # a constant group-delay/phase-delay offset (instrumental phase, dispersion) must not put
     # the rounding boundary where the data sit: centre it on the typical fractional fringe
     typical = np.nanmean(np.exp(2j * np.pi * offset / wave_ref), axis=0)
@@ -201,7 +210,7 @@ def flag_ft_frames(snr, group_delay, opd, *, wave_ref: float, baselines, triangl
     excursion = np.abs(gd - np.nanmedian(gd, axis=0)) > max_group_delay
     flags |= np.where(widen(excursion), FLAG_GD_EXCURSION, 0).astype(np.uint8)
     frac = np.angle(np.mean(np.exp(2j * np.pi * opd / wave_ref), axis=0)) * wave_ref / (2 * np.pi)
-    fringe = np.rint((median_filter(opd, size=(window, 1), mode="nearest") - frac) / wave_ref)
+    fringe = np.rint((_running_median(opd, window) - frac) / wave_ref)
     usual = np.array([_mode(f) for f in fringe.T])
     change = np.zeros(fringe.shape, bool)
     change[1:] = fringe[1:] != fringe[:-1]

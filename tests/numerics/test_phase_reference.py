@@ -278,3 +278,14 @@ def test_windows():
     mean = window_mean(vals, t, [0.0, 3.0, 20.0], [3.0, 2.0, 1.0])
     np.testing.assert_allclose(mean[:2], [[1.5, 3.0], [4.0, 8.0]])
     np.testing.assert_allclose(mean[2], [9.5, 19.0])            # no sample: interpolation (clamped)
+
+
+def test_running_median_equals_the_nd_median_filter(rng):
+    # column by column it must equal scipy's N-D median filter with a (window, 1) footprint
+    from scipy.ndimage import median_filter
+
+    from pipeline.numerics.phase_reference import _running_median
+    x = np.cumsum(rng.normal(size=(5000, 6)), axis=0)
+    for window in (1, 24, 25):
+        np.testing.assert_array_equal(_running_median(x, window),
+                                      median_filter(x, size=(window, 1), mode="nearest"))
