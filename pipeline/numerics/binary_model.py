@@ -187,7 +187,9 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
         terms.append((vis, x, y, d, disk))
     (p1, *_), (p2, *_) = terms
     den = f1 + f2
-    vis = (f1 * p1 + f2 * p2) / den
+    inv_den = 1.0 / den
+    a1, a2 = f1 * p1, f2 * p2                       # A_k
+    vis = (a1 + a2) * inv_den
     tri = _triangle_index(baselines, triangles)
 
     def bispectrum(a, b):       # sum of the three one-factor-replaced products if b is given
@@ -228,8 +230,6 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
             g = g - 8 * ln2 * coord / fwhm ** 2                     # coupling (real)
             return g * MAS, -8 * ln2 * coord / fwhm ** 2 * MAS
         return g * MAS, 0.0
-    a1, a2 = f1 * p1, f2 * p2
-    inv_den = 1.0 / den
     companion_term = {}                             # a2 d ln(A2) per axis, shared by
                                                     # the companion's and primary's offsets
     d_vis = np.empty((n, len(derivatives)) + vis.shape[1:], complex)  # (set, der, time, ...)
@@ -271,15 +271,16 @@ def binary_observables_batch(uvw_m, wave_m, params, *, bandwidth_m=None, fibre_f
     if vis.shape[1] == 1:
         # conj(V) dV: d|V|^2 = 2 Re(conj(V) dV), d arg V = Im(conj(V) dV) / |V|^2, and
         # dB / B = d ln V_ij + d ln V_jk + conj(d ln V_ik): the closure phase's derivative
-        # is the signed sum of the three phase derivatives (a +-1 matrix over baselines).
-        prod = np.conj(vis_d[:, :, 0]) * d_vis[:, :, 0]                 # (set, der, bl, wave)
-        d_ph = prod.imag / (vis_md.real ** 2 + vis_md.imag ** 2)
-        signs = np.zeros((len(tri), vis.shape[-2]))
+        # is the signed sum of the three phase derivatives.
+        vr, vi = vis_md.real.copy(), vis_md.imag.copy()                 # (set, 1, bl, wave)
+        dr, di = d_vis[:, :, 0].real, d_vis[:, :, 0].imag               # (set, der, bl, wave)
+        d_v2 = 2 * (vr * dr + vi * di)
+        d_ph = (vr * di - vi * dr) * (1 / (vr * vr + vi * vi))
+        d_t3 = np.empty(d_ph.shape[:2] + (len(tri), d_ph.shape[-1]))
         for t, (ij, jk, ik) in enumerate(tri):
-            signs[t, ij] += 1
-            signs[t, jk] += 1
-            signs[t, ik] -= 1
-        return out + (2 * prod.real, signs @ d_ph, d_ph)
+            np.add(d_ph[:, :, ij], d_ph[:, :, jk], out=d_t3[:, :, t])
+            d_t3[:, :, t] -= d_ph[:, :, ik]
+        return out + (d_v2, d_t3, d_ph)
     d_v2 = 2 * (vis_d.real * d_vis.real + vis_d.imag * d_vis.imag)
     d_t3 = (bispectrum(vis_d, d_vis).mean(2) / bis_m[:, None]).imag
     d_ph = (d_vis.mean(2) / vis_md).imag
