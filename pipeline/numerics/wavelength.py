@@ -265,38 +265,54 @@ def _gauss_newton(y, o, span, sig, dch, oc, use, n_iter=8, tol=1e-6):
     oscale = np.maximum(np.abs(o).max(0), 1e-30)
     sig, dch, oc = sig.copy(), np.abs(dch).copy(), oc.copy()
     k4 = np.pi ** 2 / _FOUR_LN2
+    # pixel-major (pix, sample) copies: every sum over samples is then one batched matrix
+    # product on contiguous rows, and the Jacobian (pix, sample, 7) is filled in place
+    yt, ot = np.ascontiguousarray(y.T), np.ascontiguousarray(o.T)
+    wt = None if np.all(use == 1) else np.ascontiguousarray(use.T)
+    st = None if span is None else np.ascontiguousarray(span.T)
+    jac = np.empty((n_p, n_s, 7))
+    jac[..., 0] = 1.0
+    jac[..., 1] = ot / oscale[:, None]
+    lin_b = jac[..., :4]
+    n_used = n_s if wt is None else wt.sum(1)
     converged = False
     for it in range(n_iter + 1):
-        xo = o - oc
-        env = np.exp(-k4 * (dch * xo) ** 2)
-        if span is not None:
-            env = env * np.sinc(sig * span)
-        ph = 2 * np.pi * sig * o
+        xo = ot - oc[:, None]
+        env = np.exp(-k4 * (dch[:, None] * xo) ** 2)
+        if st is not None:
+            env *= np.sinc(sig[:, None] * st)
+        ph = (2 * np.pi) * sig[:, None] * ot
         c, s = np.cos(ph), np.sin(ph)
-        lin_b = np.stack([np.ones_like(o), o / oscale, env * c, env * s], -1)
-        m = _weighted_gram(use, lin_b)
+        np.multiply(env, c, out=jac[..., 2])
+        np.multiply(env, s, out=jac[..., 3])
+        lin_w = lin_b if wt is None else lin_b * wt[..., None]
+        m = lin_w.transpose(0, 2, 1) @ lin_b                               # (pix, 4, 4)
+        rhs = lin_w.transpose(0, 2, 1) @ yt[..., None]
         lin = np.linalg.solve(m + 1e-12 * np.eye(4) * np.trace(m, axis1=1, axis2=2)[:, None, None],
-                              _weighted_project(lin_b, use * y)[..., None])[..., 0]
-        fr = lin[:, 2] * c + lin[:, 3] * s
-        dfr = -lin[:, 2] * s + lin[:, 3] * c
-        jac = np.concatenate([lin_b, np.stack([env * dfr * 2 * np.pi * o,
-                                               env * fr * (-2 * k4 * dch * xo ** 2),
-                                               env * fr * (2 * k4 * dch ** 2 * xo)], -1)], -1)
-        res = use * (y - np.einsum("spi,pi->sp", lin_b, lin))
-        jtj = _weighted_gram(use, jac)
+                              rhs)[..., 0]
+        fr = lin[:, 2:3] * c + lin[:, 3:4] * s
+        dfr = -lin[:, 2:3] * s + lin[:, 3:4] * c
+        np.multiply(env * dfr, (2 * np.pi) * ot, out=jac[..., 4])
+        np.multiply(env * fr, (-2 * k4) * dch[:, None] * xo ** 2, out=jac[..., 5])
+        np.multiply(env * fr, (2 * k4) * dch[:, None] ** 2 * xo, out=jac[..., 6])
+        res = yt - (lin_b @ lin[..., None])[..., 0]
+        if wt is not None:
+            res *= wt
+        jac_w = jac if wt is None else jac * wt[..., None]
+        jtj = jac_w.transpose(0, 2, 1) @ jac                               # (pix, 7, 7)
         norm = np.sqrt(np.maximum(np.einsum("pii->pi", jtj), 1e-300))
         jtj_n = jtj / norm[:, :, None] / norm[:, None, :]
         if it == n_iter or converged:
             break
-        g = _weighted_project(jac, res) / norm
+        g = (jac.transpose(0, 2, 1) @ res[..., None])[..., 0] / norm
         step_n = np.linalg.solve(jtj_n + 1e-3 * np.eye(7), g[..., None])[..., 0]
         step = step_n / norm
-        resvar = np.sum(res ** 2, 0) / np.maximum(use.sum(0) - 7, 1)
+        resvar = np.sum(res ** 2, 1) / np.maximum(n_used - 7, 1)
         converged = not np.any(np.sum(g * step_n, 1) > tol * resvar)    # NaN: no say
         sig = sig + np.clip(step[:, 4], -0.05 / oscale, 0.05 / oscale)
         dch = np.abs(dch + np.clip(step[:, 5], -0.5 * dch, 0.5 * dch))
         oc = oc + np.clip(step[:, 6], -0.2 / np.maximum(dch, 1e-30), 0.2 / np.maximum(dch, 1e-30))
-    resvar = np.sum(res ** 2, 0) / np.maximum(use.sum(0) - 7, 1)
+    resvar = np.sum(res ** 2, 1) / np.maximum(n_used - 7, 1)
     cov = np.linalg.pinv(jtj_n) / norm[:, :, None] / norm[:, None, :] * resvar[:, None, None]
     return {"sig": sig, "sig_err": np.sqrt(np.abs(cov[:, 4, 4])), "dch": dch,
             "dch_err": np.sqrt(np.abs(cov[:, 5, 5])), "oc": oc,
