@@ -32,7 +32,7 @@ __all__ = ["build_report", "FIGURE_CODE_VERSION", "CACHE_DIR"]
 # Bump whenever the drawing code (``_ExposureFigure``, ``_draw_*``, the ``_*_inputs``
 # gatherers and the helpers they call) changes what a figure looks like: it is part of
 # every cache key.
-FIGURE_CODE_VERSION = 2
+FIGURE_CODE_VERSION = 3
 CACHE_DIR = "figure-cache"
 _DPI = 90
 # zlib level 1: encoding an exposure figure 0.08 s instead of 0.12 s (level 6, the
@@ -152,30 +152,29 @@ class _FigureCache:
 # ---------------------------------------------------------------- drawing helpers
 
 def _bars(x, y, e):
-    """One polyline of vertical error bars (NaN-separated segments y - e .. y + e)."""
+    """Vertical error-bar segments (point, end, xy) from y - e to y + e."""
     x, y, e = (np.ravel(np.asarray(v, float)) for v in (x, y, e))
-    xs = np.repeat(x, 3)
-    ys = np.column_stack([y - e, y + e, np.full(y.shape, np.nan)]).ravel()
-    xs[2::3] = np.nan
-    return xs, ys
+    return np.stack([np.column_stack([x, y - e]), np.column_stack([x, y + e])], axis=1)
 
 
-def _curves(x, y):
-    """Rows of x, y (curve, point) as one NaN-separated polyline."""
-    x, y = np.atleast_2d(np.asarray(x, float)), np.atleast_2d(np.asarray(y, float))
-    pad = np.full((x.shape[0], 1), np.nan)
-    return np.hstack([x, pad]).ravel(), np.hstack([y, pad]).ravel()
-
-
-def _data_with_errors(ax, x, y, e, label=None):
-    """Points with vertical error bars for each leading index (polarisation) of y, e:
-    one error-bar polyline and one marker line per polarisation, in the colour cycle."""
+def _data_with_errors(ax, x, y, e):
+    """Points with vertical error bars for each leading index (polarisation) of y, e, as
+    ``errorbar(fmt=".", ms=2, lw=0.5, alpha=0.6)`` draws them, from one collection of
+    bars and one marker line per polarisation; returns the first polarisation's
+    handle for a legend (drawn as errorbar's)."""
+    from matplotlib.collections import LineCollection
+    from matplotlib.container import ErrorbarContainer
+    handle = None
     for p in range(y.shape[0]):
         colour = f"C{p}"
-        xs, ys = _bars(x, y[p], e[p])
-        ax.plot(xs, ys, "-", color=colour, lw=0.5, alpha=0.6)
-        ax.plot(np.ravel(x), np.ravel(y[p]), ".", color=colour, ms=2, alpha=0.6,
-                label=label if p == 0 else None)
+        bars = LineCollection(_bars(x, y[p], e[p]), colors=colour, linewidths=0.5,
+                              alpha=0.6)
+        ax.add_collection(bars, autolim=True)
+        (points,) = ax.plot(np.ravel(x), np.ravel(y[p]), ".", color=colour, ms=2, alpha=0.6,
+                            zorder=2.1)       # errorbar's: markers above lines and bars
+        if handle is None:
+            handle = ErrorbarContainer((points, (), (bars,)), has_yerr=True)
+    return handle
 
 
 def _spatial_freq(uvw, wave):
@@ -276,15 +275,16 @@ class _ExposureFigure:
         ax0.set_xlim(hi, lo)
         # V2 and model.
         v2, e2, m2 = d["vis2"], d["vis2_err"], d["model_vis2"]
-        _data_with_errors(ax[0, 1], f, v2, e2, label="data")
-        ax[0, 1].plot(*_curves(f, m2), "k-", lw=0.8, label="model")
-        ax[0, 1].legend(fontsize=8)
+        data = _data_with_errors(ax[0, 1], f, v2, e2)
+        models = [ax[0, 1].plot(f[b], m2[b], "k-", lw=0.8)[0] for b in range(f.shape[0])]
+        ax[0, 1].legend([models[0], data], ["model", "data"], fontsize=8)
         # Closure phases against the longest baseline of each triangle.
         ft = np.array([np.max([f[_BASELINES.index(p)] for p in ((i, j), (j, k), (i, k))],
                               axis=0) for i, j, k in _TRIANGLES])
         t3, et, mt = d["t3phi"], d["t3phi_err"], d["model_t3phi"]
         _data_with_errors(ax[0, 2], ft, np.degrees(t3), np.degrees(et))
-        ax[0, 2].plot(*_curves(ft, np.degrees(mt)), "k-", lw=0.8)
+        for t in range(ft.shape[0]):
+            ax[0, 2].plot(ft[t], np.degrees(mt[t]), "k-", lw=0.8)
         # Normalised residuals.
         r2 = ((v2 - m2) / e2).ravel()
         rt = (np.angle(np.exp(1j * (t3 - mt))) / et).ravel()
@@ -413,7 +413,6 @@ def _qc_inputs(qc: dict, binary_attrs) -> dict | None:
 
 def _draw_qc(d: dict):
     plt = _plt()
-    from matplotlib.collections import LineCollection
     panels, rej = d["panels"], d["rejected"]
     n = len(panels) + 1
     ncol = min(3, n)
@@ -421,14 +420,9 @@ def _draw_qc(d: dict):
     fig, ax = plt.subplots(nrow, ncol, figsize=(5 * ncol, 3.6 * nrow), squeeze=False)
     ax = ax.ravel()
     for a_, (title, data) in zip(ax, panels):
-        data = np.atleast_2d(np.asarray(data, float))
-        rows = data.reshape(-1, data.shape[-1])
-        # one collection of all rows (one line each, in the colours of the default cycle)
-        x = np.broadcast_to(np.arange(rows.shape[1], dtype=float), rows.shape)
-        lines = LineCollection(np.stack([x, rows], axis=-1), linewidths=0.6,
-                               colors=[f"C{k % 10}" for k in range(rows.shape[0])])
-        a_.add_collection(lines)
-        a_.autoscale_view()
+        data = np.atleast_2d(data)
+        for row in data.reshape(-1, data.shape[-1]):
+            a_.plot(row, lw=0.6)
         a_.set(title=title, xlabel="pixel / channel")
     a_ = ax[len(panels)]
     a_.bar(range(len(rej)), [r[1] for r in rej], color="tab:orange")
