@@ -53,6 +53,6 @@ def run(inputs, params: ReportParams) -> dict:
             "failed_inputs": "\n".join(sorted(inputs.failed.values()))}
 
 
-STAGE = Stage(name="report", version="2", params=ReportParams, after=("binary",),
+STAGE = Stage(name="report", version="3", params=ReportParams, after=("binary",),
               granularity="night", plan=plan, run=run, partial=True,
               doc="QC report: uv coverage, V2/closure phases with model, chi2 maps, astrometry")
