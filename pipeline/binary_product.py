@@ -7,6 +7,14 @@ with ``view["name"]``, ``name in view`` and ``view.attrs``), builds
 the store writes: the best fit as attributes (``lmfit_params`` holds the lmfit
 Parameters as JSON), the chi-square map of the global search, and the data with
 the best model (for the report).
+
+With a ``cache_dir``, the costly part of the fit (search, refinement, bootstraps:
+``refine_binary``) is kept there by a digest of everything it depends on: the
+observables, bootstrap realisations included, the parameters it takes, the source
+of the fitting code and the versions of numpy, scipy and lmfit. A change of a
+parameter that only enters the reported errors and flags (``pointing_sigma_mas``,
+``ambiguous_dchi2``, ``chi2_red_range``) then re-summarises the kept fit, which is
+exactly what a refit would give.
 """
 
 from __future__ import annotations
@@ -15,14 +23,19 @@ import json
 
 import numpy as np
 
+from . import skymodel
+from .digest import ArrayCache, content_digest, source_digest
 from .errors import BadInput, FitFailed
-from .numerics.binary_fit import FLAGS, BinaryFitResult, Observables, fit_binary
+from .numerics import binary_fit, binary_model
+from .numerics.binary_fit import (FLAGS, BinaryFitResult, Observables, RefinedFit,
+                                  refine_binary, summarise_fit)
 from .numerics.binary_model import binary_observables
 from .numerics.correlated_draws import draw_correlated
 from .numerics.ellipse import ErrorEllipse, SepPA
 from .stage import Array
 
-__all__ = ["observables_from_product", "binary_product", "to_jsonable", "FLAG_DOC"]
+__all__ = ["observables_from_product", "binary_product", "refined_fit", "to_jsonable",
+           "FLAG_DOC", "SUMMARY_KEYWORDS"]
 
 FLAG_DOC = ", ".join(f"{b}={name}" for name, b in FLAGS.items())
 
@@ -81,13 +94,40 @@ def observables_from_product(view, *, use_phases: bool = True, n_draw: int = 0,
         raise BadInput(path, str(exc)) from None
 
 
+SUMMARY_KEYWORDS = ("ambiguous_dchi2", "chi2_red_range")
+"""Keywords of ``fit_kw`` that enter the summary only (``summarise_fit``), not the fit."""
+
+
+def _code_versions() -> list:
+    import lmfit
+    import scipy
+    return [source_digest(binary_fit, binary_model, skymodel), np.__version__,
+            scipy.__version__, lmfit.__version__]
+
+
+def refined_fit(obs: Observables, *, cache_dir=None, **refine_kw) -> RefinedFit:
+    """``refine_binary(obs, **refine_kw)``, kept in (and taken from) ``cache_dir``."""
+    if cache_dir is None:
+        return refine_binary(obs, **refine_kw)
+    fields = {k: v for k, v in vars(obs).items() if v is not None}
+    key = content_digest("refine_binary", fields, refine_kw, _code_versions())
+    cache = ArrayCache(cache_dir)
+    kept = cache.get(key)
+    if kept is not None:
+        return RefinedFit.from_arrays(kept)
+    refined = refine_binary(obs, **refine_kw)
+    cache.put(key, refined.to_arrays())
+    return refined
+
+
 def binary_product(view, instrument, *, exposure: str, search_radius_mas: float | None,
                    fit_kw: dict, use_phases: bool = True, n_boot: int = 50, seed: int = 0,
-                   pointing_sigma_mas: tuple = (0.0, 0.0)) -> dict:
+                   pointing_sigma_mas: tuple = (0.0, 0.0), cache_dir=None) -> dict:
     """Fit one calibrated exposure; returns the ``binary`` product's outputs.
 
     ``pointing_sigma_mas``: uncertainty of the pair's place in the fibre without and with
-    calibrated referenced phases (see ``fit_binary``)."""
+    calibrated referenced phases (see ``fit_binary``). ``cache_dir``: where the costly
+    part of the fit is kept (module docstring); None keeps nothing."""
     # Referenced phases give the primary's offset only when their zero-point was solved
     # with the calibrators' own offsets; an interpolated zero-point still contains those
     # offsets (unknown, ~mas), so the phase reference is not calibrated: V2 and closure
@@ -97,12 +137,15 @@ def binary_product(view, instrument, *, exposure: str, search_radius_mas: float 
                                    seed=seed)
     fibre = float(instrument.fibre_fwhm_mas_at_2p2um)
     radius = fibre if search_radius_mas is None else float(search_radius_mas)
+    summary_kw = {k: fit_kw[k] for k in SUMMARY_KEYWORDS if k in fit_kw}
+    refine_kw = {k: v for k, v in fit_kw.items() if k not in SUMMARY_KEYWORDS}
     try:
-        res = fit_binary(obs, fibre_fwhm_mas=fibre, search_radius_mas=radius, n_boot=n_boot,
-                         seed=seed, pointing_sigma_mas=pointing_sigma_mas[int(obs.has_phase)],
-                         **fit_kw)
+        refined = refined_fit(obs, cache_dir=cache_dir, fibre_fwhm_mas=fibre,
+                              search_radius_mas=radius, n_boot=n_boot, seed=seed, **refine_kw)
     except FitFailed as exc:
         raise BadInput(getattr(view, "path", "?"), str(exc)) from None
+    res = summarise_fit(refined, fibre_fwhm_mas=fibre, search_radius_mas=radius,
+                        pointing_sigma_mas=pointing_sigma_mas[int(obs.has_phase)], **summary_kw)
     p = json.loads(res.params_json)
     m2, mt, mp = binary_observables(
         obs.uvw, obs.wave, dra_mas=res.dra, ddec_mas=res.ddec, flux_ratio=res.flux_ratio,

@@ -19,13 +19,14 @@ the current report does not use are removed when it is written.
 
 from __future__ import annotations
 
-import hashlib
 import html
 import os
 import shutil
 from pathlib import Path
 
 import numpy as np
+
+from .digest import content_digest
 
 __all__ = ["build_report", "FIGURE_CODE_VERSION", "CACHE_DIR"]
 
@@ -51,35 +52,6 @@ def _plt():
 
 # ---------------------------------------------------------------- content keys
 
-def _feed(h, value) -> None:
-    """Feed one figure input into the hash, typed so that distinct inputs never collide."""
-    if isinstance(value, np.ndarray):
-        if value.dtype.hasobject:           # (e.g. strings): no stable bytes, by element
-            h.update(f"O{value.shape}|".encode())
-            _feed(h, value.ravel().tolist())
-            return
-        a = np.ascontiguousarray(value)
-        h.update(f"A{a.dtype.str}{a.shape}|".encode())
-        h.update(a.tobytes())
-    elif isinstance(value, (list, tuple)):
-        h.update(f"L{len(value)}|".encode())
-        for v in value:
-            _feed(h, v)
-    elif isinstance(value, dict):
-        h.update(f"D{len(value)}|".encode())
-        for k in sorted(value):
-            _feed(h, str(k))
-            _feed(h, value[k])
-    elif isinstance(value, np.generic):
-        _feed(h, value.item())
-    elif value is None or isinstance(value, (bool, int, float, str, bytes)):
-        r = repr(value).encode()   # float repr is exact (shortest round-trip form)
-        h.update(f"S{type(value).__name__}{len(r)}|".encode())
-        h.update(r)
-    else:
-        raise TypeError(f"figure input of type {type(value).__name__} cannot be keyed")
-
-
 _NOT_DRAWING = ("backend", "interactive", "keymap.", "toolbar", "webagg.", "savefig.directory")
 
 
@@ -94,11 +66,8 @@ def _style() -> str:
 def figure_key(kind: str, inputs: dict, style: str | None = None) -> str:
     """Hex digest of a figure's kind, its inputs, the drawing code's version and the
     matplotlib style (``_style()``, computed if not given)."""
-    h = hashlib.blake2b(digest_size=16)
-    _feed(h, [kind, FIGURE_CODE_VERSION, _DPI, _PNG_OPTIONS,
-              _style() if style is None else style])
-    _feed(h, inputs)
-    return h.hexdigest()
+    return content_digest([kind, FIGURE_CODE_VERSION, _DPI, _PNG_OPTIONS,
+                           _style() if style is None else style], inputs)
 
 
 class _FigureCache:

@@ -1,15 +1,23 @@
 # SPDX-License-Identifier: BSD-3-Clause
 """Stage ``binary``: per calibrated science exposure, the binary model fitted by a global
-chi-square search over the fibre's field and lmfit refinement, with errors and flags."""
+chi-square search over the fibre's field and lmfit refinement, with errors and flags.
+
+The search, refinement and bootstraps are kept in ``WORK/binary/refined-cache`` by what
+they depend on (``pipeline.binary_product``): a rerun after a change of a threshold or of
+the pointing uncertainty only re-summarises them. The directory may be deleted at any
+time; it is refilled as needed."""
 
 from __future__ import annotations
 
 import zlib
 from dataclasses import dataclass
+from pathlib import Path
 
 from pipeline.binary_product import binary_product
 from pipeline.inventory import Inventory
 from pipeline.stage import Stage, Unit
+
+CACHE_DIR = "refined-cache"
 
 
 @dataclass(frozen=True)
@@ -65,11 +73,12 @@ def run(inputs, params: BinaryParams) -> dict:
                   chi2_red_range=(p.chi2_red_min, p.chi2_red_max))
     label = inputs.unit.label
     exposure = inputs.unit.raw[0].rsplit("/", 1)[-1] if inputs.unit.raw else label
+    cache = Path(inputs.workdir) / "binary" / CACHE_DIR if inputs.workdir else None
     return binary_product(inputs.products["calibrated"], inputs.instrument, exposure=exposure,
                           search_radius_mas=p.search_radius_mas or None, fit_kw=fit_kw,
                           use_phases=p.use_phases, n_boot=p.n_boot,
                           pointing_sigma_mas=(p.pointing_sigma_mas, p.phase_pointing_sigma_mas),
-                          seed=(zlib.crc32(label.encode()) + p.seed) % 2 ** 32)
+                          seed=(zlib.crc32(label.encode()) + p.seed) % 2 ** 32, cache_dir=cache)
 
 
 STAGE = Stage(name="binary", version="7", params=BinaryParams, after=("calibrate",),

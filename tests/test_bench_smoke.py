@@ -77,3 +77,18 @@ def test_child_answers_and_table(tmp_path):
     assert res["returncode"] == 0 and res["tree_peak_rss_bytes"] > 0
     text = bench._table({**res, "io_floor_ratio": 2.0, "cores": 2})
     assert "io_floor_ratio" in text and "met" in text
+
+
+def test_change_param_moves_a_binary_parameter_to_a_new_value(tmp_path):
+    from pipeline.config import load_params
+    from recipes import STAGES
+    config = tmp_path / "bench-params.toml"
+    config.write_text("[binary]\nambiguous_dchi2 = 10.0\n")
+    assert bench._change_param(config, "ambiguous_dchi2", 2.0) == 12.0
+    assert bench._change_param(config, "n_boot", 1) == 51      # from BinaryParams' default
+    assert bench._change_param(config, "n_boot", 1) == 52
+    # truth: the file as the reduction reads it (tomllib through pipeline.config)
+    assert tomllib.loads(config.read_text()) == {"binary": {"ambiguous_dchi2": 12.0,
+                                                            "n_boot": 52}}
+    params = load_params(STAGES, [config])["binary"]
+    assert (params.ambiguous_dchi2, params.n_boot) == (12.0, 52)

@@ -95,6 +95,50 @@ def test_binary_product_recovers_truth(night):
         assert v["chi2_map"].shape == (v["grid_ddec"].size, v["grid_dra"].size)
 
 
+def test_binary_rerun_reuses_the_kept_fit(night, instrument, monkeypatch):
+    # The fixture's binary run kept each exposure's search, refinement and bootstraps in
+    # WORK/binary/refined-cache. A flag threshold or the pointing error changed: the
+    # stage re-summarises them without fitting; a parameter of the fit changed: it refits.
+    import dataclasses
+    from pipeline import binary_product as bp
+    work, views, _ = night
+    params = binary.BinaryParams(search_radius_mas=12.0, n_boot=8, n_start=3)
+    label = "FF_SCI_000"
+    unit = Unit(label=label, raw=(f"/night/{label}.fits",),
+                needs={"calibrated": ("calibrate", label)})
+
+    def run(p, workdir=work):
+        cal = ProductView(work / "calibrate" / f"{label}.c0.h5")
+        return binary.run(Inputs(unit=unit, raw=[], products={"calibrated": cal},
+                                 instrument=instrument, workdir=workdir), p)
+    kept = sorted((work / "binary" / binary.CACHE_DIR).glob("*.npz"))
+    assert len(kept) == 3
+    refits = []
+    monkeypatch.setattr(bp, "refine_binary", lambda obs, **kw: refits.append(kw) or
+                        pytest.fail("refitted"))
+    same = run(params)
+    first = views[0].attrs
+    for k in ("dra", "ddec", "dra_err", "flux_ratio_err", "chi2", "lmfit_params", "flag"):
+        assert same[k] == first[k], k
+    assert np.array_equal(same["chi2_map"].data, views[0]["chi2_map"], equal_nan=True)
+    looser = run(dataclasses.replace(params, ambiguous_dchi2=0.0, pointing_sigma_mas=6.0,
+                                     phase_pointing_sigma_mas=2.0, chi2_red_max=1.0001))
+    assert not looser["flag"] & 1                 # dchi2 / scale < 0 never holds
+    assert looser["flux_ratio_err"] > same["flux_ratio_err"]
+    assert bool(looser["flag"] & 8) == (looser["chi2_red"] > 1.0001)
+    for k in ("dra", "ddec", "dra_err", "ddec_err", "chi2", "runner_up_dchi2"):
+        assert looser[k] == same[k] or (k == "runner_up_dchi2" and np.isnan(same[k])), k
+    assert refits == []
+    with pytest.raises(pytest.fail.Exception, match="refitted"):
+        run(dataclasses.replace(params, n_boot=9))
+    assert len(refits) == 1 and refits[0]["n_boot"] == 9
+    monkeypatch.undo()
+    # Without the kept entries (the directory deleted) the stage fits again: same result.
+    fresh = run(params, workdir=work / "elsewhere")
+    assert fresh["dra"] == first["dra"] and fresh["flag"] == first["flag"]
+    assert len(list((work / "elsewhere" / "binary" / binary.CACHE_DIR).glob("*.npz"))) == 1
+
+
 def test_bad_calibrated_product_names_the_file(tmp_path, instrument, rng):
     from pipeline.errors import BadInput
     d = _calibrated(instrument, rng, 0.0, 61010.0)

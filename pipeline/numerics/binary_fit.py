@@ -60,8 +60,9 @@ from pipeline.numerics.binary_model import (BASELINES, PARAM_NAMES, TRIANGLES, a
 from pipeline.numerics.ellipse import ErrorEllipse, SepPA, correlation, error_ellipse, sep_pa
 from pipeline.skymodel import MAS, fibre_coupling, point_phasor
 
-__all__ = ["FLAGS", "Observables", "BinaryFitResult", "fit_binary", "search_grid",
-           "refit_batch", "params_to_json", "params_from_json"]
+__all__ = ["FLAGS", "BOOT_NAMES", "Observables", "BinaryFitResult", "RefinedFit", "fit_binary",
+           "refine_binary", "summarise_fit", "search_grid", "refit_batch", "params_to_json",
+           "params_from_json"]
 
 FLAGS = {"ambiguous": 1, "field_edge": 2, "flux_ratio_zero": 4, "chi2_red": 8,
          "no_covariance": 16}
@@ -291,6 +292,54 @@ def _refine(residual, start):
                           Dfun=getattr(residual, "jacobian", None))
 
 
+@dataclass(frozen=True, eq=False)
+class RefinedFit:
+    """What the global search, the lmfit refinement and the bootstraps of one exposure
+    give (:func:`refine_binary`). The reported errors and the flags follow from it and a
+    few thresholds (:func:`summarise_fit`), so a change of those needs no refit; its
+    fields are arrays, numbers and strings (:meth:`to_arrays`), so it can be kept."""
+    grid_dra: np.ndarray                  # (n_x,) mas
+    grid_ddec: np.ndarray                 # (n_y,) mas
+    step: float                           # mas, grid step
+    chi2_map: np.ndarray                  # (n_y, n_x), flux ratio profiled; NaN outside field
+    minima: np.ndarray                    # (n_min, 3): dra, ddec, chi2 of the grid minima
+    candidates: np.ndarray                # (n_fit, 3): dra, ddec, chi2 of the distinct
+                                          # refined minima, best first
+    params_json: str                      # lmfit Parameters of the best fit
+    covar: np.ndarray                     # (n_var, n_var) unscaled lmfit covariance; (0, 0)
+                                          # when lmfit gave none
+    var_names: tuple                      # the varied parameters, in ``covar``'s order
+    ndata: int
+    nfree: int
+    has_phase: bool
+    boots: dict                           # kind -> (n, 7) refitted values of BOOT_NAMES
+
+    def to_arrays(self) -> dict:
+        """Every field as a numpy array (``boots`` as ``boot:<kind>``)."""
+        out = {k: np.asarray(getattr(self, k)) for k in
+               ("grid_dra", "grid_ddec", "step", "chi2_map", "minima", "candidates",
+                "params_json", "covar", "ndata", "nfree", "has_phase")}
+        out["var_names"] = np.array(self.var_names, dtype=str)
+        out.update({f"boot:{k}": np.asarray(v) for k, v in self.boots.items()})
+        return out
+
+    @classmethod
+    def from_arrays(cls, arrays) -> "RefinedFit":
+        """Inverse of :meth:`to_arrays` (any mapping of name -> array)."""
+        a = {k: np.asarray(arrays[k]) for k in arrays}
+        return cls(grid_dra=a["grid_dra"], grid_ddec=a["grid_ddec"], step=float(a["step"]),
+                   chi2_map=a["chi2_map"], minima=a["minima"], candidates=a["candidates"],
+                   params_json=str(a["params_json"]), covar=a["covar"],
+                   var_names=tuple(str(v) for v in a["var_names"]), ndata=int(a["ndata"]),
+                   nfree=int(a["nfree"]), has_phase=bool(a["has_phase"]),
+                   boots={k.split(":", 1)[1]: a[k] for k in a if k.startswith("boot:")})
+
+
+BOOT_NAMES = ("dra", "ddec", "flux_ratio", "primary_dra", "primary_ddec", "diameter1",
+              "diameter2")
+"""Parameters kept from every bootstrap refit, in the columns of ``RefinedFit.boots``."""
+
+
 def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_mas: float,
                step_fraction: float = 0.25, flux_ratios=None, flux_ratio_max: float = 1.5,
                fit_slope: bool = False, diameters_mas=(0.0, 0.0), fit_diameters=(False, False),
@@ -299,6 +348,9 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
                chi2_red_range=(0.25, 5.0), bootstrap: Literal["auto", "channels", "none"] = "auto",
                seed: int = 0) -> BinaryFitResult:
     """Fit a binary to one exposure's observables.
+
+    :func:`refine_binary` (search, refinement, bootstraps) followed by
+    :func:`summarise_fit` (reported errors, flags).
 
     Parameters
     ----------
@@ -335,6 +387,28 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
     FitFailed
         Fewer valid data points than free parameters.
     """
+    refined = refine_binary(obs, fibre_fwhm_mas=fibre_fwhm_mas,
+                            search_radius_mas=search_radius_mas, step_fraction=step_fraction,
+                            flux_ratios=flux_ratios, flux_ratio_max=flux_ratio_max,
+                            fit_slope=fit_slope, diameters_mas=diameters_mas,
+                            fit_diameters=fit_diameters, n_start=n_start, n_boot=n_boot,
+                            search_max_channels=search_max_channels, bootstrap=bootstrap,
+                            seed=seed)
+    return summarise_fit(refined, fibre_fwhm_mas=fibre_fwhm_mas,
+                         search_radius_mas=search_radius_mas,
+                         pointing_sigma_mas=pointing_sigma_mas,
+                         ambiguous_dchi2=ambiguous_dchi2, chi2_red_range=chi2_red_range)
+
+
+def refine_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_mas: float,
+                  step_fraction: float = 0.25, flux_ratios=None, flux_ratio_max: float = 1.5,
+                  fit_slope: bool = False, diameters_mas=(0.0, 0.0),
+                  fit_diameters=(False, False), n_start: int = 5, n_boot: int = 50,
+                  search_max_channels: int = 32,
+                  bootstrap: Literal["auto", "channels", "none"] = "auto",
+                  seed: int = 0) -> RefinedFit:
+    """The costly part of :func:`fit_binary` (same parameters): the global search, the
+    lmfit refinement of its best minima and the bootstrap refits."""
     from pipeline.errors import FitFailed
     if not 0 < step_fraction <= 0.25:
         raise ValueError(f"step_fraction must be in (0, 0.25], found {step_fraction}")
@@ -394,28 +468,50 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
         fits = [_refine(residual, p) for p in starts]
     fits.sort(key=lambda f: f.chisqr)
     best = fits[0]
-    bp = best.params
-    chi2 = float(best.chisqr)
+    boots = _bootstrap(obs, refit_kw=dict(fibre_fwhm_mas=fibre_fwhm_mas, max_step_mas=step),
+                       start=best.params, n_boot=n_boot, mode=bootstrap, seed=seed,
+                       names=list(BOOT_NAMES))
+    candidates = np.array([[f.params["dra"].value, f.params["ddec"].value, f.chisqr]
+                           for f in fits], float)
+    return RefinedFit(grid_dra=gx, grid_ddec=gy, step=step, chi2_map=chi2_map, minima=minima,
+                      candidates=candidates, params_json=params_to_json(best.params),
+                      covar=(np.zeros((0, 0)) if best.covar is None
+                             else np.asarray(best.covar, float)),
+                      var_names=tuple(best.var_names), ndata=int(ndata), nfree=int(nfree),
+                      has_phase=obs.has_phase, boots=boots)
+
+
+def summarise_fit(refined: RefinedFit, *, fibre_fwhm_mas: float | None,
+                  search_radius_mas: float, pointing_sigma_mas: float = 0.0,
+                  ambiguous_dchi2: float = 10.0,
+                  chi2_red_range=(0.25, 5.0)) -> BinaryFitResult:
+    """Reported errors and flags of a :class:`RefinedFit` (parameters as in
+    :func:`fit_binary`; ``fibre_fwhm_mas`` and ``search_radius_mas`` as it was refined
+    with)."""
+    bp = params_from_json(refined.params_json)
+    step = refined.step
+    chi2 = float(refined.candidates[0, 2])
+    ndata, nfree, has_phase = refined.ndata, refined.nfree, refined.has_phase
     chi2_red = chi2 / (ndata - nfree)
     scale = max(1.0, chi2_red)
 
     # Runner-up: best refined minimum at least half a fringe spacing from the best one.
     min_dist = 2 * step
-    runner = next((f for f in fits[1:] if np.hypot(f.params["dra"].value - bp["dra"].value,
-                                                   f.params["ddec"].value - bp["ddec"].value)
-                   > min_dist), None)
+    best_xy = refined.candidates[0, :2]
+    runner = next((c for c in refined.candidates[1:] if np.hypot(*(c[:2] - best_xy)) > min_dist),
+                  None)
 
-    names = ["dra", "ddec", "flux_ratio", "primary_dra", "primary_ddec", "diameter1", "diameter2"]
+    names = list(BOOT_NAMES)
     cov_fit_full = np.full((7, 7), np.nan)
-    if best.covar is not None:
-        idx = [best.var_names.index(n) if n in best.var_names else None for n in names]
+    if refined.covar.size:
+        var = list(refined.var_names)
+        idx = [var.index(n) if n in var else None for n in names]
         for a, ia in enumerate(idx):
             for b, ib in enumerate(idx):
                 if ia is not None and ib is not None:
-                    cov_fit_full[a, b] = best.covar[ia, ib] * scale
+                    cov_fit_full[a, b] = refined.covar[ia, ib] * scale
 
-    boots = _bootstrap(obs, refit_kw=dict(fibre_fwhm_mas=fibre_fwhm_mas, max_step_mas=step),
-                       start=bp, n_boot=n_boot, mode=bootstrap, seed=seed, names=names)
+    boots = refined.boots
     estimates = {"fit": cov_fit_full}
     estimates.update({k: np.cov(v, rowvar=False) for k, v in boots.items() if len(v) > 2})
     source, cov_full = _largest(estimates, slice(0, 2))
@@ -440,7 +536,7 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
         ratio_err_total = ratio_err
 
     flag = 0
-    dchi2 = float(runner.chisqr - chi2) if runner is not None else np.nan
+    dchi2 = float(runner[2] - chi2) if runner is not None else np.nan
     if runner is not None and dchi2 / scale < ambiguous_dchi2:
         flag |= FLAGS["ambiguous"]
     if np.hypot(dra, ddec) > search_radius_mas - step:
@@ -452,27 +548,30 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
     if not np.all(np.isfinite(pos_fit)):
         flag |= FLAGS["no_covariance"]
     nan = float("nan")
+    fitted = [bp[f"diameter{k}"].vary for k in (1, 2)]
     return BinaryFitResult(
         dra=float(dra), ddec=float(ddec), cov=cov, dra_err=float(err[0]), ddec_err=float(err[1]),
         dra_ddec_corr=correlation(cov), flux_ratio=float(ratio),
         flux_ratio_err=ratio_err_total, flux_ratio_err_stat=ratio_err,
         flux_slope=float(bp["flux_slope"].value),
-        primary_dra=float(bp["primary_dra"].value) if obs.has_phase else nan,
-        primary_ddec=float(bp["primary_ddec"].value) if obs.has_phase else nan,
-        primary_dra_err=float(err[3]) if obs.has_phase else nan,
-        primary_ddec_err=float(err[4]) if obs.has_phase else nan,
+        primary_dra=float(bp["primary_dra"].value) if has_phase else nan,
+        primary_ddec=float(bp["primary_ddec"].value) if has_phase else nan,
+        primary_dra_err=float(err[3]) if has_phase else nan,
+        primary_ddec_err=float(err[4]) if has_phase else nan,
         diameter1=float(bp["diameter1"].value), diameter2=float(bp["diameter2"].value),
-        diameter1_err=float(err[5]) if fit_diameters[0] else nan,
-        diameter2_err=float(err[6]) if fit_diameters[1] else nan,
+        diameter1_err=float(err[5]) if fitted[0] else nan,
+        diameter2_err=float(err[6]) if fitted[1] else nan,
         sep_pa=sep_pa(dra, ddec, cov), ellipse=error_ellipse(cov), chi2=chi2, chi2_red=chi2_red,
         ndata=ndata, nfree=nfree, flag=flag,
-        runner_up_dra=float(runner.params["dra"].value) if runner is not None else nan,
-        runner_up_ddec=float(runner.params["ddec"].value) if runner is not None else nan,
+        runner_up_dra=float(runner[0]) if runner is not None else nan,
+        runner_up_ddec=float(runner[1]) if runner is not None else nan,
         runner_up_dchi2=dchi2, cov_fit=pos_fit, cov_boot=pos_boot,
         error_source=source, bootstrap_kind="+".join(boots) or "none",
-        n_boot=max((len(v) for v in boots.values()), default=0), grid_dra=gx, grid_ddec=gy,
-        chi2_map=chi2_map, minima=minima,
-        params_json=params_to_json(bp), flag_names=tuple(k for k, b in FLAGS.items() if flag & b))
+        n_boot=max((len(v) for v in boots.values()), default=0),
+        grid_dra=refined.grid_dra, grid_ddec=refined.grid_ddec,
+        chi2_map=refined.chi2_map, minima=refined.minima,
+        params_json=refined.params_json,
+        flag_names=tuple(k for k, b in FLAGS.items() if flag & b))
 
 
 def _largest(estimates, block):
