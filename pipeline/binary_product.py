@@ -14,7 +14,10 @@ observables, bootstrap realisations included, the parameters it takes, the sourc
 of the fitting code and the versions of numpy, scipy and lmfit. A change of a
 parameter that only enters the reported errors and flags (``pointing_sigma_mas``,
 ``ambiguous_dchi2``, ``chi2_red_range``) then re-summarises the kept fit, which is
-exactly what a refit would give.
+exactly what a refit would give. The global search (``grid_search``) is kept on its
+own, by the observables and parameters it reads, so a change of a parameter of the
+refinement or of the bootstraps (``n_start``, ``n_boot``, ``fit_slope``, ``use_phases``)
+reuses it.
 """
 
 from __future__ import annotations
@@ -27,15 +30,16 @@ from . import skymodel
 from .digest import ArrayCache, content_digest, source_digest
 from .errors import BadInput, FitFailed
 from .numerics import binary_fit, binary_model
-from .numerics.binary_fit import (FLAGS, BinaryFitResult, Observables, RefinedFit,
-                                  refine_binary, summarise_fit)
+from .numerics.binary_fit import (FLAGS, SEARCH_FIELDS, BinaryFitResult, GridSearch,
+                                  Observables, RefinedFit, grid_search, refine_binary,
+                                  summarise_fit)
 from .numerics.binary_model import binary_observables
 from .numerics.correlated_draws import draw_correlated
 from .numerics.ellipse import ErrorEllipse, SepPA
 from .stage import Array
 
 __all__ = ["observables_from_product", "binary_product", "refined_fit", "to_jsonable",
-           "FLAG_DOC", "SUMMARY_KEYWORDS"]
+           "FLAG_DOC", "SUMMARY_KEYWORDS", "SEARCH_KEYWORDS"]
 
 FLAG_DOC = ", ".join(f"{b}={name}" for name, b in FLAGS.items())
 
@@ -105,17 +109,33 @@ def _code_versions() -> list:
             scipy.__version__, lmfit.__version__]
 
 
+SEARCH_KEYWORDS = ("fibre_fwhm_mas", "search_radius_mas", "step_fraction", "flux_ratios",
+                   "flux_ratio_max", "diameters_mas", "fit_diameters", "search_max_channels")
+"""Keywords of ``refine_binary`` that ``grid_search`` takes."""
+
+
 def refined_fit(obs: Observables, *, cache_dir=None, **refine_kw) -> RefinedFit:
-    """``refine_binary(obs, **refine_kw)``, kept in (and taken from) ``cache_dir``."""
+    """``refine_binary(obs, **refine_kw)``, kept in (and taken from) ``cache_dir``; its
+    global search is kept on its own too (by the fields and parameters it reads), so a
+    change of a parameter of the refinement or the bootstraps only reruns those."""
     if cache_dir is None:
         return refine_binary(obs, **refine_kw)
+    cache, code = ArrayCache(cache_dir), _code_versions()
     fields = {k: v for k, v in vars(obs).items() if v is not None}
-    key = content_digest("refine_binary", fields, refine_kw, _code_versions())
-    cache = ArrayCache(cache_dir)
+    key = content_digest("refine_binary", fields, refine_kw, code)
     kept = cache.get(key)
     if kept is not None:
         return RefinedFit.from_arrays(kept)
-    refined = refine_binary(obs, **refine_kw)
+    search_kw = {k: v for k, v in refine_kw.items() if k in SEARCH_KEYWORDS}
+    search_key = content_digest("grid_search", {k: fields[k] for k in SEARCH_FIELDS
+                                                if k in fields}, search_kw, code)
+    kept = cache.get(search_key)
+    if kept is not None:
+        search = GridSearch.from_arrays(kept)
+    else:
+        search = grid_search(obs, **search_kw)
+        cache.put(search_key, search.to_arrays())
+    refined = refine_binary(obs, search=search, **refine_kw)
     cache.put(key, refined.to_arrays())
     return refined
 

@@ -99,6 +99,7 @@ def test_binary_rerun_reuses_the_kept_fit(night, instrument, monkeypatch):
     # The fixture's binary run kept each exposure's search, refinement and bootstraps in
     # WORK/binary/refined-cache. A flag threshold or the pointing error changed: the
     # stage re-summarises them without fitting; a parameter of the fit changed: it refits.
+    # (The results equal a fresh fit's: tests/numerics/test_binary_fit.py.)
     import dataclasses
     from pipeline import binary_product as bp
     work, views, _ = night
@@ -112,10 +113,12 @@ def test_binary_rerun_reuses_the_kept_fit(night, instrument, monkeypatch):
         return binary.run(Inputs(unit=unit, raw=[], products={"calibrated": cal},
                                  instrument=instrument, workdir=workdir), p)
     kept = sorted((work / "binary" / binary.CACHE_DIR).glob("*.npz"))
-    assert len(kept) == 3
-    refits = []
+    assert len(kept) == 6                         # per exposure: its search, its fit
+    refits, searches = [], []
     monkeypatch.setattr(bp, "refine_binary", lambda obs, **kw: refits.append(kw) or
                         pytest.fail("refitted"))
+    monkeypatch.setattr(bp, "grid_search", lambda obs, **kw: searches.append(kw) or
+                        pytest.fail("searched"))
     same = run(params)
     first = views[0].attrs
     for k in ("dra", "ddec", "dra_err", "flux_ratio_err", "chi2", "lmfit_params", "flag"):
@@ -131,12 +134,16 @@ def test_binary_rerun_reuses_the_kept_fit(night, instrument, monkeypatch):
     assert refits == []
     with pytest.raises(pytest.fail.Exception, match="refitted"):
         run(dataclasses.replace(params, n_boot=9))
-    assert len(refits) == 1 and refits[0]["n_boot"] == 9
+    # ... from the kept search (which a change of the search's own parameters redoes).
+    assert len(refits) == 1 and refits[0]["n_boot"] == 9 and searches == []
+    assert refits[0]["search"].chi2_map.shape == views[0]["chi2_map"].shape
+    with pytest.raises(pytest.fail.Exception, match="searched"):
+        run(dataclasses.replace(params, step_fraction=0.2))
     monkeypatch.undo()
     # Without the kept entries (the directory deleted) the stage fits again: same result.
     fresh = run(params, workdir=work / "elsewhere")
     assert fresh["dra"] == first["dra"] and fresh["flag"] == first["flag"]
-    assert len(list((work / "elsewhere" / "binary" / binary.CACHE_DIR).glob("*.npz"))) == 1
+    assert len(list((work / "elsewhere" / "binary" / binary.CACHE_DIR).glob("*.npz"))) == 2
 
 
 def test_bad_calibrated_product_names_the_file(tmp_path, instrument, rng):

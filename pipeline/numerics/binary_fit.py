@@ -60,8 +60,9 @@ from pipeline.numerics.binary_model import (BASELINES, PARAM_NAMES, TRIANGLES, a
 from pipeline.numerics.ellipse import ErrorEllipse, SepPA, correlation, error_ellipse, sep_pa
 from pipeline.skymodel import MAS, fibre_coupling, point_phasor
 
-__all__ = ["FLAGS", "BOOT_NAMES", "Observables", "BinaryFitResult", "RefinedFit", "fit_binary",
-           "refine_binary", "summarise_fit", "search_grid", "refit_batch", "params_to_json",
+__all__ = ["FLAGS", "BOOT_NAMES", "SEARCH_FIELDS", "Observables", "BinaryFitResult",
+           "GridSearch", "RefinedFit", "fit_binary", "grid_search", "refine_binary",
+           "summarise_fit", "search_grid", "refit_batch", "params_to_json",
            "params_from_json"]
 
 FLAGS = {"ambiguous": 1, "field_edge": 2, "flux_ratio_zero": 4, "chi2_red": 8,
@@ -400,20 +401,45 @@ def fit_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_
                          ambiguous_dchi2=ambiguous_dchi2, chi2_red_range=chi2_red_range)
 
 
-def refine_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_mas: float,
-                  step_fraction: float = 0.25, flux_ratios=None, flux_ratio_max: float = 1.5,
-                  fit_slope: bool = False, diameters_mas=(0.0, 0.0),
-                  fit_diameters=(False, False), n_start: int = 5, n_boot: int = 50,
-                  search_max_channels: int = 32,
-                  bootstrap: Literal["auto", "channels", "none"] = "auto",
-                  seed: int = 0) -> RefinedFit:
-    """The costly part of :func:`fit_binary` (same parameters): the global search, the
-    lmfit refinement of its best minima and the bootstrap refits."""
-    from pipeline.errors import FitFailed
+@dataclass(frozen=True, eq=False)
+class GridSearch:
+    """Chi-square of the global search over the fibre's field (:func:`grid_search`)."""
+    grid_dra: np.ndarray                  # (n_x,) mas
+    grid_ddec: np.ndarray                 # (n_y,) mas
+    step: float                           # mas
+    chi2_map: np.ndarray                  # (n_y, n_x), flux ratio profiled; NaN outside field
+    ratio_map: np.ndarray                 # (n_y, n_x), the flux ratio of chi2_map
+
+    def to_arrays(self) -> dict:
+        return {k: np.asarray(getattr(self, k)) for k in
+                ("grid_dra", "grid_ddec", "step", "chi2_map", "ratio_map")}
+
+    @classmethod
+    def from_arrays(cls, arrays) -> "GridSearch":
+        a = {k: np.asarray(arrays[k]) for k in arrays}
+        return cls(grid_dra=a["grid_dra"], grid_ddec=a["grid_ddec"], step=float(a["step"]),
+                   chi2_map=a["chi2_map"], ratio_map=a["ratio_map"])
+
+
+SEARCH_FIELDS = ("vis2", "vis2_err", "t3phi", "t3phi_err", "uvw", "wave", "bandwidth",
+                 "baselines", "triangles")
+"""The :class:`Observables` fields :func:`grid_search` reads."""
+
+
+def _search_channels(n_wave: int, max_channels: int) -> np.ndarray:
+    return np.unique(np.linspace(0, n_wave - 1, min(n_wave, max_channels)).round().astype(int))
+
+
+def grid_search(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_mas: float,
+                step_fraction: float = 0.25, flux_ratios=None, flux_ratio_max: float = 1.5,
+                diameters_mas=(0.0, 0.0), fit_diameters=(False, False),
+                search_max_channels: int = 32) -> GridSearch:
+    """Global chi-square search of :func:`fit_binary` (same parameters; reads only the
+    fields ``SEARCH_FIELDS`` of ``obs``): V2 and closure phases of ``search_max_channels``
+    channels on a square grid over the disk of ``search_radius_mas``, the flux ratio
+    profiled over ``flux_ratios``."""
     if not 0 < step_fraction <= 0.25:
         raise ValueError(f"step_fraction must be in (0, 0.25], found {step_fraction}")
-    if bootstrap not in ("auto", "channels", "none"):
-        raise ValueError(f"bootstrap must be 'auto', 'channels' or 'none', found {bootstrap!r}")
     ratios = (np.geomspace(1e-3, flux_ratio_max, 16) if flux_ratios is None
               else np.asarray(flux_ratios, float))
     uvw_mean = np.asarray(obs.uvw, float).reshape(-1, len(obs.baselines), 3).mean(0)
@@ -421,8 +447,7 @@ def refine_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radi
                                step_fraction=step_fraction)
     xx, yy = np.meshgrid(gx, gy)
     inside = np.hypot(xx, yy) <= search_radius_mas
-    nw = len(obs.wave)
-    ch = np.unique(np.linspace(0, nw - 1, min(nw, search_max_channels)).round().astype(int))
+    ch = _search_channels(len(obs.wave), search_max_channels)
     bw = None if obs.bandwidth is None else np.asarray(obs.bandwidth)[..., ch]
     # With diameters to fit, the grid uses closure phases only: a resolved star's V2 loss,
     # unknown yet, would otherwise pull the search towards a bright close companion.
@@ -436,6 +461,33 @@ def refine_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radi
     chi2_map[inside] = c2.min(1)
     ratio_map = np.full(xx.shape, np.nan)
     ratio_map[inside] = ratios[c2.argmin(1)]
+    return GridSearch(grid_dra=gx, grid_ddec=gy, step=step, chi2_map=chi2_map,
+                      ratio_map=ratio_map)
+
+
+def refine_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radius_mas: float,
+                  step_fraction: float = 0.25, flux_ratios=None, flux_ratio_max: float = 1.5,
+                  fit_slope: bool = False, diameters_mas=(0.0, 0.0),
+                  fit_diameters=(False, False), n_start: int = 5, n_boot: int = 50,
+                  search_max_channels: int = 32,
+                  bootstrap: Literal["auto", "channels", "none"] = "auto",
+                  seed: int = 0, search: "GridSearch | None" = None) -> RefinedFit:
+    """The costly part of :func:`fit_binary` (same parameters): the global search, the
+    lmfit refinement of its best minima and the bootstrap refits. ``search``: the
+    :func:`grid_search` of ``obs`` with these parameters, if already done."""
+    from pipeline.errors import FitFailed
+    if bootstrap not in ("auto", "channels", "none"):
+        raise ValueError(f"bootstrap must be 'auto', 'channels' or 'none', found {bootstrap!r}")
+    if search is None:
+        search = grid_search(obs, fibre_fwhm_mas=fibre_fwhm_mas,
+                             search_radius_mas=search_radius_mas, step_fraction=step_fraction,
+                             flux_ratios=flux_ratios, flux_ratio_max=flux_ratio_max,
+                             diameters_mas=diameters_mas, fit_diameters=fit_diameters,
+                             search_max_channels=search_max_channels)
+    gx, gy, step = search.grid_dra, search.grid_ddec, search.step
+    chi2_map, ratio_map = search.chi2_map, search.ratio_map
+    nw = len(obs.wave)
+    ch = _search_channels(nw, search_max_channels)
     iy, ix = _local_minima(chi2_map, n_start)
     minima = np.column_stack([gx[ix], gy[iy], chi2_map[iy, ix]])
 

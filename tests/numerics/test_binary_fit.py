@@ -15,9 +15,9 @@ from scipy.stats import chi2 as chi2_dist
 
 from pipeline.errors import FitFailed
 from pipeline.geometry import uvw_from_enu
-from pipeline.numerics.binary_fit import (FLAGS, Observables, RefinedFit, fit_binary,
-                                          params_from_json, refine_binary, search_grid,
-                                          summarise_fit)
+from pipeline.numerics.binary_fit import (FLAGS, GridSearch, Observables, RefinedFit,
+                                          fit_binary, grid_search, params_from_json,
+                                          refine_binary, search_grid, summarise_fit)
 from pipeline.numerics.correlated_draws import draw_correlated
 from pipeline.numerics.binary_model import binary_observables, grid_chi2
 from pipeline.skymodel import MAS, binary_visibility
@@ -386,6 +386,8 @@ def _same(a, b) -> bool:
         return np.array_equal(np.asarray(a), np.asarray(b), equal_nan=True)
     if dataclasses.is_dataclass(a):
         return all(_same(getattr(a, f.name), getattr(b, f.name)) for f in dataclasses.fields(a))
+    if isinstance(a, dict):
+        return a.keys() == b.keys() and all(_same(a[k], b[k]) for k in a)
     return a == b or (a != a and b != b)
 
 
@@ -395,12 +397,18 @@ def test_kept_fit_summarises_to_the_fit(uvw, rng):
     # other thresholds and pointing errors too: those need no refit.
     obs = synth(uvw, rng, dra=11.0, ddec=6.0, ratio=0.9, ep=0.02, n_boot=6)
     kw = dict(fibre_fwhm_mas=FIBRE, search_radius_mas=20.0)
+    def through_npz(obj):
+        buf = io.BytesIO()
+        np.savez(buf, **obj.to_arrays())
+        buf.seek(0)
+        with np.load(buf, allow_pickle=False) as npz:
+            return type(obj).from_arrays(npz)
+    search = through_npz(grid_search(obs, **kw))
+    assert isinstance(search, GridSearch)
     refined = refine_binary(obs, n_boot=8, n_start=4, **kw)
-    buf = io.BytesIO()
-    np.savez(buf, **refined.to_arrays())
-    buf.seek(0)
-    with np.load(buf, allow_pickle=False) as npz:
-        kept = RefinedFit.from_arrays(npz)
+    assert _same(refined, refine_binary(obs, n_boot=8, n_start=4, search=search, **kw))
+    kept = through_npz(refined)
+    assert isinstance(kept, RefinedFit)
     assert np.isfinite(refined.candidates[1:, 2]).all() and len(refined.candidates) > 1
     for summary in (dict(ambiguous_dchi2=10.0, chi2_red_range=(0.25, 5.0)),
                     dict(ambiguous_dchi2=1e9, chi2_red_range=(2.0, 3.0),
