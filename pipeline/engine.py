@@ -426,8 +426,9 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
                 if name not in stage_names:
                     raise ConfigError("--force", f"no stage {name!r}; stages are {stage_names}")
             _save_state(workdir, plan.night_dir, config)
-            for tmp in workdir.glob("*/.*.tmp"):     # left by a killed run: never trusted
-                tmp.unlink(missing_ok=True)
+            for pattern in ("*/.*.tmp", "*/*/.*.tmp"):   # products, stages' caches
+                for tmp in workdir.glob(pattern):        # left by a killed run: never trusted
+                    tmp.unlink(missing_ok=True)
             log.info("reduce %s -> %s (twinfield %s, scheduler %s)", plan.night_dir, workdir,
                      __version__, scheduler)
             problems = plan.inventory.problems()

@@ -87,7 +87,8 @@ def test_killed_reductions_then_finished_equal_a_clean_run(tmp_path_factory, tin
     done = subprocess.run(_reduce_cmd(night, work), capture_output=True, text=True)
     assert done.returncode == 0, done.stdout + done.stderr
     assert "0 failed" in done.stdout
-    assert not list(work.glob("*/.*.tmp")), "temporary files of killed runs were left"
+    assert not list(work.glob("*/.*.tmp")) + list(work.glob("*/*/.*.tmp")), \
+        "temporary files of killed runs were left"
     assert not (work / engine.LOCK_FILE).exists()
     # Products lost or different from the clean run: none (same keys, same datasets).
     assert differing_products(work, clean) == []
