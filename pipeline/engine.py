@@ -24,6 +24,7 @@ import socket
 import sys
 import time
 import traceback
+import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -374,18 +375,9 @@ def _is_result(x) -> bool:
 
 def _compute(tasks: list, scheduler: str, workers: int | None, progress: bool,
              debug: bool = False) -> list:
+    """Results of the local dask graph ``tasks`` (threads, processes or synchronous)."""
     import dask
     from dask.callbacks import Callback
-    if scheduler.startswith("tcp://") or scheduler.startswith("tls://"):
-        from distributed import Client, as_completed, progress as dist_progress
-        with Client(scheduler) as client:
-            futures = client.compute(tasks)
-            if progress:
-                dist_progress(futures)
-            for fut in as_completed(futures):
-                if fut.status == "finished":
-                    _log_result(fut.result(), debug)
-            return client.gather(futures)
     if scheduler not in ("threads", "processes", "synchronous"):
         raise ConfigError("--scheduler", f"expected threads, processes or tcp://HOST:PORT, "
                                          f"found {scheduler!r}")
@@ -402,6 +394,81 @@ def _compute(tasks: list, scheduler: str, workers: int | None, progress: bool,
             with ProgressBar():
                 return list(dask.compute(*tasks, **kw))
         return list(dask.compute(*tasks, **kw))
+
+
+def _failed_result(spec: dict, exc: BaseException) -> dict:
+    """The result of a unit whose task itself failed (a worker lost, say): recorded like
+    any failure, so the rest of the night goes on."""
+    unit = spec["unit"]
+    message = f"{type(exc).__name__}: {exc}"
+    prov = {"stage": spec["stage"], "label": unit.label, "key": spec["key"]}
+    try:
+        write_failure(Path(spec["workdir"]), spec["stage"], unit.label, spec["key"], message,
+                      dict(prov))
+    except OSError:
+        pass
+    return {**prov, "state": "failed", "path": "", "message": message, "traceback": "",
+            "root": message, "seconds": 0.0}
+
+
+def _compute_distributed(jobs: list, done: dict, address: str, progress: bool,
+                         debug: bool = False) -> dict:
+    """Run ``jobs`` [(uid, spec, {role: upstream uid})] on the dask.distributed scheduler
+    at ``address``; ``done`` holds the results of the units reused. Returns uid -> result.
+
+    Units pass each other only small result dicts (their products are files), so data
+    locality means nothing here, while a unit placed beside its inputs behind a long unit,
+    another worker idling, costs the night its length. So this process keeps the queue: a
+    unit becomes ready when its upstream units have finished, and is submitted (their
+    results as plain arguments, no dask dependency) when a worker thread is free, the
+    ready unit with the most units downstream of it first.
+    """
+    import heapq
+    from distributed import Client, wait
+    done = dict(done)
+    specs = {uid: (spec, refs) for uid, spec, refs in jobs}
+    waiting = {uid: {r for r in refs.values() if r in specs} for uid, _, refs in jobs}
+    dependents: dict = {uid: [] for uid in specs}
+    for uid, ups in waiting.items():
+        for up in ups:
+            dependents[up].append(uid)
+    downstream: dict = {}
+    order = {uid: n for n, (uid, _, _) in enumerate(jobs)}
+    for uid, _, _ in reversed(jobs):                  # graph order reversed: children first
+        downstream[uid] = set(dependents[uid]).union(*(downstream[d] for d in dependents[uid]))
+    ready = [(-len(downstream[uid]), order[uid], uid) for uid in specs if not waiting[uid]]
+    heapq.heapify(ready)
+    results, running, run = {}, {}, uuid.uuid4().hex     # keys unique to this run
+    with Client(address) as client:
+        while ready or running:
+            slots = max(1, sum(client.nthreads().values()))
+            while ready and len(running) < slots:
+                uid = heapq.heappop(ready)[2]
+                spec, refs = specs[uid]
+                up = {role: done[ref] for role, ref in refs.items() if ref in done}
+                future = client.submit(_execute, spec, up, pure=False,
+                                       key=f"twinfield_unit-{run}-{order[uid]}")
+                running[future] = uid
+            finished, _ = wait(list(running), return_when="FIRST_COMPLETED")
+            for future in finished:
+                uid = running.pop(future)
+                try:
+                    res = future.result()
+                except Exception as exc:              # the task itself failed (worker lost)
+                    res = _failed_result(specs[uid][0], exc)
+                future.release()
+                done[uid] = results[uid] = res
+                _log_result(res, debug)
+                for child in dependents[uid]:
+                    waiting[child].discard(uid)
+                    if not waiting[child]:
+                        heapq.heappush(ready, (-len(downstream[child]), order[child], child))
+            if progress:
+                print(f"\r[{len(results)}/{len(specs)}] units", end="", file=sys.stderr,
+                      flush=True)
+    if progress:
+        print(file=sys.stderr)
+    return results
 
 
 def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None,
@@ -443,7 +510,8 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
             forced = plan.dependents({uid for uid in plan.units if uid[0] in force})
             summary = RunSummary(bad_files=list(plan.inventory.bad))
             summary.failed += [(name, "(plan)", msg) for name, msg in plan.stage_errors.items()]
-            values, tasks = {}, []
+            values, tasks, jobs = {}, [], []
+            distributed = scheduler.startswith(("tcp://", "tls://"))
             for uid, pu in plan.units.items():
                 if uid not in forced and pu.error is None and plan.is_current(pu):
                     values[uid] = {"stage": pu.stage, "label": pu.unit.label, "key": pu.key,
@@ -456,14 +524,23 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
                         "path": str(pu.path), "params": plan.params[pu.stage],
                         "version": stage.version, "raw_ids": pu.raw_ids, "workdir": str(workdir),
                         "error": pu.error}
+                if distributed:
+                    jobs.append((uid, spec, dict(pu.upstream)))
+                    continue
                 up = {role: values[ref] for role, ref in pu.upstream.items() if ref in values}
                 task = dask.delayed(_execute, pure=False)(
                     spec, up, dask_key_name=f"{pu.stage}:{pu.unit.label}:{pu.key[:8]}")
                 values[uid] = task
                 tasks.append((uid, task))
-            results = (_compute([t for _, t in tasks], scheduler, workers, progress, debug)
-                       if tasks else [])
-            for (uid, _), res in zip(tasks, results):
+            if distributed:
+                by_uid = (_compute_distributed(jobs, values, scheduler, progress, debug)
+                          if jobs else {})
+                finished = [(uid, by_uid[uid]) for uid, _, _ in jobs]
+            else:
+                results = (_compute([t for _, t in tasks], scheduler, workers, progress, debug)
+                           if tasks else [])
+                finished = [(uid, res) for (uid, _), res in zip(tasks, results)]
+            for uid, res in finished:
                 if res["state"] == "failed":
                     summary.failed.append((uid[0], uid[1], res["message"]))
                 else:

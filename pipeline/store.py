@@ -47,6 +47,8 @@ def worth_compressing(sample) -> bool:
     not worth the CPU of compressing them."""
     b = np.ascontiguousarray(sample).reshape(-1).view(np.uint8)[:1 << 18].tobytes()
     return len(b) > 0 and len(zlib.compress(b, 1)) < _COMPRESS_RATIO * len(b)
+
+
 _H5_LOCK = threading.RLock()    # short reads; h5py itself serialises library calls
 
 

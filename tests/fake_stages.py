@@ -79,3 +79,19 @@ def _summary_run(inputs, params):
 SUMMARY = Stage("summary", "1", SummaryParams, ("consumer",), "night", _summary_plan,
                 _summary_run, partial=True)
 """A night-level summary that runs with whatever upstream units succeeded."""
+
+
+def _crasher_plan(inventory, params, upstream):
+    darks = sorted(u.label for u in upstream.get("dark", []) if u.meta["channel"] == "sci")
+    return [Unit(label=label, needs={"dark": ("dark", label)}, meta={"crash": k == 0})
+            for k, label in enumerate(darks)]
+
+
+def _crasher_run(inputs, params):
+    if inputs.unit.meta["crash"]:
+        os._exit(3)          # the worker process dies, as if killed or crashed in C
+    return _consumer_run(inputs, params)
+
+
+CRASHER = Stage("crasher", "1", ConsumerParams, ("dark",), "setup", _crasher_plan,
+                _crasher_run)

@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from fake_stages import CONSUMER, SLOW
+from fake_stages import CONSUMER, CRASHER, SLOW
 from pipeline.engine import (LOCK_FILE, LOG_FILE, Locked, build_plan, reduce, rerun, status)
 from pipeline.errors import ConfigError
 from pipeline.store import ProductView, is_complete
@@ -147,7 +147,7 @@ def test_lock(night, tmp_path):
 KILLED_RUN = """
 import sys
 sys.path.insert(0, {tests!r})
-from fake_stages import CONSUMER, SLOW
+from fake_stages import CONSUMER, CRASHER, SLOW
 from recipes import dark, inventory
 from pipeline.engine import reduce
 reduce({night!r}, {work!r}, stages=[inventory.STAGE, dark.STAGE, CONSUMER, SLOW],
@@ -264,6 +264,28 @@ def test_distributed_scheduler_by_address(night, tmp_path):
         run = reduce(night, tmp_path / "work", stages=[inventory.STAGE, dark.STAGE],
                      scheduler=cluster.scheduler_address, progress=False)
     assert run.exit_code == 0 and len(run.computed) == 4
+
+
+def test_distributed_lost_worker_fails_its_unit_only(night, tmp_path):
+    """A unit whose worker process dies fails with a failure record naming the loss; the
+    other units of the night still run (the scheduler is told not to retry it)."""
+    import dask
+    from distributed import LocalCluster
+    tests_dir = str(Path(__file__).parent)            # fake_stages, for the workers
+    with dask.config.set({"distributed.scheduler.allowed-failures": 0}), \
+            LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
+                         dashboard_address=None, env={"PYTHONPATH": tests_dir}) as cluster:
+        run = reduce(night, tmp_path / "work", stages=[inventory.STAGE, dark.STAGE, CRASHER],
+                     scheduler=cluster.scheduler_address, progress=False)
+    crashed = [(s, l, m) for s, l, m in run.failed]
+    assert len(crashed) == 1 and crashed[0][0] == "crasher", run.text()
+    assert "KilledWorker" in crashed[0][2]
+    others = [uid for uid in run.computed if uid[0] == "crasher"]
+    assert len(others) >= 1 and all(uid[1] != crashed[0][1] for uid in others)
+    stages = [inventory.STAGE, dark.STAGE, CRASHER]
+    record = [r for r in status(tmp_path / "work", stages=stages) if r["stage"] == "crasher"
+              and r["name"] == crashed[0][1]]
+    assert record and record[0]["state"] == "failed"
 
 
 @pytest.mark.slow
