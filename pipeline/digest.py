@@ -11,6 +11,7 @@ hash the same bytes (``[1, 2]`` and ``"[1, 2]"``, ``1`` and ``1.0`` differ).
 from __future__ import annotations
 
 import hashlib
+import logging
 import os
 import threading
 import zipfile
@@ -81,18 +82,31 @@ class ArrayCache:
         try:
             with np.load(path, allow_pickle=False) as npz:
                 return {k: npz[k] for k in npz.files}
-        except FileNotFoundError:
+        except (FileNotFoundError, NotADirectoryError):
             return None
         except (OSError, ValueError, EOFError, zipfile.BadZipFile):
-            path.unlink(missing_ok=True)
+            try:
+                path.unlink(missing_ok=True)
+            except OSError:
+                pass
             return None
 
-    def put(self, key: str, arrays: dict) -> None:
-        self.dir.mkdir(parents=True, exist_ok=True)
+    def put(self, key: str, arrays: dict) -> bool:
+        """Keep ``arrays`` under ``key``; False (nothing kept, a warning logged) when the
+        directory cannot be written (full disk, read-only): a cache never fails its user."""
         tmp = self.dir / f".{key}.{os.getpid()}.{threading.get_ident()}.tmp"
         try:
+            self.dir.mkdir(parents=True, exist_ok=True)
             with open(tmp, "wb") as fh:
                 np.savez(fh, **arrays)
             os.replace(tmp, self.path(key))
+            return True
+        except OSError as exc:
+            logging.getLogger("twinfield").warning("%s: could not keep %s (%s)", self.dir, key,
+                                                   exc)
+            return False
         finally:
-            tmp.unlink(missing_ok=True)
+            try:
+                tmp.unlink(missing_ok=True)
+            except OSError:
+                pass

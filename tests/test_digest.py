@@ -43,3 +43,12 @@ def test_array_cache_round_trip_and_bad_entries(tmp_path):
     assert not list(cache.dir.glob(".*.tmp"))
     cache.path("k").write_bytes(cache.path("k").read_bytes()[:40])   # truncated entry
     assert cache.get("k") is None and not cache.path("k").exists()
+
+
+def test_array_cache_that_cannot_write_only_warns(tmp_path, caplog):
+    blocker = tmp_path / "file"
+    blocker.write_text("not a directory")
+    cache = ArrayCache(blocker / "c")              # its directory cannot be made
+    with caplog.at_level("WARNING", logger="twinfield"):
+        assert cache.put("k", {"a": np.zeros(3)}) is False
+    assert "could not keep k" in caplog.text and cache.get("k") is None
