@@ -534,13 +534,10 @@ def main(argv=None) -> int:
 def _change_param(config: Path, name: str, step):
     """Add ``step`` to the binary parameter ``name`` in the benchmark's config (a value
     never used before, so no kept fit matches it); returns the new value."""
+    from recipes.binary import BinaryParams
     text = config.read_text()
     found = re.search(rf"^{name} = ([\d.]+)$", text, flags=re.M)
-    old = type(step)(found.group(1)) if found else None
-    if old is None:
-        from recipes.binary import BinaryParams
-        old = type(step)(getattr(BinaryParams(), name))
-    value = old + step
+    value = type(step)(found.group(1) if found else getattr(BinaryParams(), name)) + step
     line = f"{name} = {value}"
     text = text.replace(found.group(0), line) if found else text.rstrip("\n") + f"\n{line}\n"
     config.write_text(text)

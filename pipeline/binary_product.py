@@ -22,6 +22,7 @@ reuses it.
 
 from __future__ import annotations
 
+import functools
 import json
 
 import numpy as np
@@ -102,11 +103,13 @@ SUMMARY_KEYWORDS = ("ambiguous_dchi2", "chi2_red_range")
 """Keywords of ``fit_kw`` that enter the summary only (``summarise_fit``), not the fit."""
 
 
-def _code_versions() -> list:
+@functools.lru_cache(maxsize=None)
+def _code_versions() -> tuple:
+    """The fitting code's source digest and library versions, read once per process."""
     import lmfit
     import scipy
-    return [source_digest(binary_fit, binary_model, skymodel), np.__version__,
-            scipy.__version__, lmfit.__version__]
+    return (source_digest(binary_fit, binary_model, skymodel), np.__version__,
+            scipy.__version__, lmfit.__version__)
 
 
 SEARCH_KEYWORDS = ("fibre_fwhm_mas", "search_radius_mas", "step_fraction", "flux_ratios",

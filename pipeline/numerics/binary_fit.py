@@ -299,10 +299,7 @@ class RefinedFit:
     give (:func:`refine_binary`). The reported errors and the flags follow from it and a
     few thresholds (:func:`summarise_fit`), so a change of those needs no refit; its
     fields are arrays, numbers and strings (:meth:`to_arrays`), so it can be kept."""
-    grid_dra: np.ndarray                  # (n_x,) mas
-    grid_ddec: np.ndarray                 # (n_y,) mas
-    step: float                           # mas, grid step
-    chi2_map: np.ndarray                  # (n_y, n_x), flux ratio profiled; NaN outside field
+    search: "GridSearch"                  # the global search it started from
     minima: np.ndarray                    # (n_min, 3): dra, ddec, chi2 of the grid minima
     candidates: np.ndarray                # (n_fit, 3): dra, ddec, chi2 of the distinct
                                           # refined minima, best first
@@ -316,11 +313,12 @@ class RefinedFit:
     boots: dict                           # kind -> (n, 7) refitted values of BOOT_NAMES
 
     def to_arrays(self) -> dict:
-        """Every field as a numpy array (``boots`` as ``boot:<kind>``)."""
+        """Every field as a numpy array (``search`` as ``search:<field>``, ``boots`` as
+        ``boot:<kind>``)."""
         out = {k: np.asarray(getattr(self, k)) for k in
-               ("grid_dra", "grid_ddec", "step", "chi2_map", "minima", "candidates",
-                "params_json", "covar", "ndata", "nfree", "has_phase")}
+               ("minima", "candidates", "params_json", "covar", "ndata", "nfree", "has_phase")}
         out["var_names"] = np.array(self.var_names, dtype=str)
+        out.update({f"search:{k}": v for k, v in self.search.to_arrays().items()})
         out.update({f"boot:{k}": np.asarray(v) for k, v in self.boots.items()})
         return out
 
@@ -328,12 +326,14 @@ class RefinedFit:
     def from_arrays(cls, arrays) -> "RefinedFit":
         """Inverse of :meth:`to_arrays` (any mapping of name -> array)."""
         a = {k: np.asarray(arrays[k]) for k in arrays}
-        return cls(grid_dra=a["grid_dra"], grid_ddec=a["grid_ddec"], step=float(a["step"]),
-                   chi2_map=a["chi2_map"], minima=a["minima"], candidates=a["candidates"],
-                   params_json=str(a["params_json"]), covar=a["covar"],
-                   var_names=tuple(str(v) for v in a["var_names"]), ndata=int(a["ndata"]),
-                   nfree=int(a["nfree"]), has_phase=bool(a["has_phase"]),
-                   boots={k.split(":", 1)[1]: a[k] for k in a if k.startswith("boot:")})
+
+        def prefixed(prefix):
+            return {k[len(prefix):]: v for k, v in a.items() if k.startswith(prefix)}
+        return cls(search=GridSearch.from_arrays(prefixed("search:")), minima=a["minima"],
+                   candidates=a["candidates"], params_json=str(a["params_json"]),
+                   covar=a["covar"], var_names=tuple(str(v) for v in a["var_names"]),
+                   ndata=int(a["ndata"]), nfree=int(a["nfree"]), has_phase=bool(a["has_phase"]),
+                   boots=prefixed("boot:"))
 
 
 BOOT_NAMES = ("dra", "ddec", "flux_ratio", "primary_dra", "primary_ddec", "diameter1",
@@ -525,8 +525,7 @@ def refine_binary(obs: Observables, *, fibre_fwhm_mas: float | None, search_radi
                        names=list(BOOT_NAMES))
     candidates = np.array([[f.params["dra"].value, f.params["ddec"].value, f.chisqr]
                            for f in fits], float)
-    return RefinedFit(grid_dra=gx, grid_ddec=gy, step=step, chi2_map=chi2_map, minima=minima,
-                      candidates=candidates, params_json=params_to_json(best.params),
+    return RefinedFit(search=search, minima=minima, candidates=candidates, params_json=params_to_json(best.params),
                       covar=(np.zeros((0, 0)) if best.covar is None
                              else np.asarray(best.covar, float)),
                       var_names=tuple(best.var_names), ndata=int(ndata), nfree=int(nfree),
@@ -541,7 +540,8 @@ def summarise_fit(refined: RefinedFit, *, fibre_fwhm_mas: float | None,
     :func:`fit_binary`; ``fibre_fwhm_mas`` and ``search_radius_mas`` as it was refined
     with)."""
     bp = params_from_json(refined.params_json)
-    step = refined.step
+    search = refined.search
+    step = search.step
     chi2 = float(refined.candidates[0, 2])
     ndata, nfree, has_phase = refined.ndata, refined.nfree, refined.has_phase
     chi2_red = chi2 / (ndata - nfree)
@@ -620,8 +620,8 @@ def summarise_fit(refined: RefinedFit, *, fibre_fwhm_mas: float | None,
         runner_up_dchi2=dchi2, cov_fit=pos_fit, cov_boot=pos_boot,
         error_source=source, bootstrap_kind="+".join(boots) or "none",
         n_boot=max((len(v) for v in boots.values()), default=0),
-        grid_dra=refined.grid_dra, grid_ddec=refined.grid_ddec,
-        chi2_map=refined.chi2_map, minima=refined.minima,
+        grid_dra=search.grid_dra, grid_ddec=search.grid_ddec,
+        chi2_map=search.chi2_map, minima=refined.minima,
         params_json=refined.params_json,
         flag_names=tuple(k for k, b in FLAGS.items() if flag & b))
 
