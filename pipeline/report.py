@@ -14,7 +14,9 @@ covering those inputs, ``FIGURE_CODE_VERSION``, the matplotlib version and its r
 settings, and the report's file (``exposure_000.png``, ...) is a hard link to (or a
 copy of) it. A report whose products changed only where a figure does not look (a
 flag threshold that flips no flag) reuses the PNG. Cache entries and exposure figures
-the current report does not use are removed when it is written.
+the current report does not use are removed when it is written. The exposure figures
+are usually in the cache before the report runs: the ``figure`` stage draws each one
+(:func:`exposure_figure`) as soon as its fit is done, beside the other fits.
 """
 
 from __future__ import annotations
@@ -22,13 +24,14 @@ from __future__ import annotations
 import html
 import os
 import shutil
+import threading
 from pathlib import Path
 
 import numpy as np
 
 from .digest import content_digest
 
-__all__ = ["build_report", "FIGURE_CODE_VERSION", "CACHE_DIR"]
+__all__ = ["build_report", "exposure_figure", "FIGURE_CODE_VERSION", "CACHE_DIR"]
 
 # Bump whenever the drawing code (``_ExposureFigure``, ``_draw_*``, the ``_*_inputs``
 # gatherers and the helpers they call) changes what a figure looks like: it is part of
@@ -41,6 +44,9 @@ _DPI = 90
 _PNG_OPTIONS = {"compress_level": 1}
 _TRIANGLES = [(0, 1, 2), (0, 1, 3), (0, 2, 3), (1, 2, 3)]
 _BASELINES = [(0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3)]
+# matplotlib is not thread-safe, and drawing holds the GIL anyway: one figure at a time
+# per process (units of the threads scheduler draw exposure figures side by side).
+_DRAW_LOCK = threading.RLock()
 
 
 def _plt():
@@ -80,21 +86,26 @@ class _FigureCache:
         self.used: set[str] = set()
         self.style = _style()
 
-    def figure(self, name: str, kind: str, inputs: dict, draw, keep: bool = False) -> str:
-        """Publish ``outdir/name``: the cached PNG of the figure ``draw(inputs)`` returns,
-        drawn if missing (and closed after saving unless ``keep``: a reused figure)."""
+    def entry(self, kind: str, inputs: dict, draw, keep: bool = False) -> Path:
+        """The cached PNG of the figure ``draw(inputs)`` returns, drawn if missing (and
+        closed after saving unless ``keep``: a reused figure)."""
         entry = self.dir / f"{kind}-{figure_key(kind, inputs, self.style)}.png"
         if not entry.is_file():
-            fig = draw(inputs)
-            tmp = self.dir / f".{entry.name}.{os.getpid()}.tmp"
-            try:
-                fig.savefig(tmp, dpi=_DPI, format="png", pil_kwargs=_PNG_OPTIONS)
-            finally:
-                if not keep:
-                    _plt().close(fig)
+            with _DRAW_LOCK:
+                fig = draw(inputs)
+                tmp = self.dir / f".{entry.name}.{os.getpid()}.{threading.get_ident()}.tmp"
+                try:
+                    fig.savefig(tmp, dpi=_DPI, format="png", pil_kwargs=_PNG_OPTIONS)
+                finally:
+                    if not keep:
+                        _plt().close(fig)
             os.replace(tmp, entry)
         self.used.add(entry.name)
-        self._publish(entry, self.outdir / name)
+        return entry
+
+    def figure(self, name: str, kind: str, inputs: dict, draw, keep: bool = False) -> str:
+        """Publish ``outdir/name``: the cached PNG of :meth:`entry`."""
+        self._publish(self.entry(kind, inputs, draw, keep), self.outdir / name)
         return name
 
     def _publish(self, entry: Path, path: Path) -> None:
@@ -103,7 +114,7 @@ class _FigureCache:
                 return
         except OSError:
             pass
-        tmp = self.outdir / f".{path.name}.{os.getpid()}.tmp"
+        tmp = self.outdir / f".{path.name}.{os.getpid()}.{threading.get_ident()}.tmp"
         tmp.unlink(missing_ok=True)
         try:
             os.link(entry, tmp)
@@ -186,8 +197,10 @@ class _ExposureFigure:
     """
 
     def __init__(self):
-        plt = _plt()
-        self.fig, self.ax = plt.subplots(2, 3, figsize=(15, 8.5))
+        from matplotlib.figure import Figure
+        # not a pyplot figure: kept for the life of the process without pyplot's registry
+        self.fig = Figure(figsize=(15, 8.5))
+        self.ax = self.fig.subplots(2, 3)
         ax = self.ax
         # Titles at a fixed height: the automatic placement measures every tick label
         # of the figure to avoid tick labels on top of the axes (none here) and a y-axis
@@ -214,7 +227,8 @@ class _ExposureFigure:
         self.colorbars = None
 
     def close(self):
-        _plt().close(self.fig)
+        """Release the figure's drawing (no pyplot registry to leave)."""
+        self.fig.clear()
 
     def _clear(self):
         for a_ in self.ax.ravel()[:5]:
@@ -306,6 +320,33 @@ class _ExposureFigure:
             f"flag {a['flag']} {a['flag_names']}"]))
         self.suptitle.set_text(f"{a['exposure']}: {a['target']}")
         return fig
+
+
+_PROCESS_FIGURE: list = []      # this process's _ExposureFigure, made on first use
+
+
+def _draw_exposure(d: dict):
+    """Draw on this process's exposure figure (the caller holds ``_DRAW_LOCK``)."""
+    if not _PROCESS_FIGURE:
+        _PROCESS_FIGURE.append(_ExposureFigure())
+    return _PROCESS_FIGURE[0].draw(d)
+
+
+def exposure_figure(outdir, view, attrs=None) -> str:
+    """Draw the figure of one ``binary`` product into the report's figure cache,
+    ``outdir/figure-cache`` (``outdir``: ``WORK/report``), unless it is there already;
+    returns the cache entry's file name. :func:`build_report` then finds it drawn: the
+    exposures' figures can be drawn as their fits finish, not all at the end.
+
+    Parameters
+    ----------
+    outdir : path of the report
+    view : product view of a ``binary`` product
+    attrs : its attributes, if already read
+    """
+    cache = _FigureCache(Path(outdir))
+    inputs = _exposure_inputs(view, view.attrs if attrs is None else attrs)
+    return cache.entry("exposure", inputs, _draw_exposure, keep=True).name
 
 
 # ---------------------------------------------------------------- night level
@@ -442,21 +483,10 @@ def build_report(outdir, binaries, *, table=None, qc=None, title="twinfield nigh
     if qc_in is not None:
         figs.append(("Calibration quality control",
                      cache.figure("calibration_qc.png", "qc", qc_in, _draw_qc)))
-    exposure_figure = []       # made on the first exposure not in the cache
-
-    def draw_exposure(d):
-        if not exposure_figure:
-            exposure_figure.append(_ExposureFigure())
-        return exposure_figure[0].draw(d)
-
-    try:
-        for k, (b, a) in enumerate(zip(binaries, binary_attrs)):
-            figs.append((f"Exposure {a.get('exposure', k)}",
-                         cache.figure(f"exposure_{k:03d}.png", "exposure",
-                                      _exposure_inputs(b, a), draw_exposure, keep=True)))
-    finally:
-        for fig in exposure_figure:
-            fig.close()
+    for k, (b, a) in enumerate(zip(binaries, binary_attrs)):
+        figs.append((f"Exposure {a.get('exposure', k)}",
+                     cache.figure(f"exposure_{k:03d}.png", "exposure",
+                                  _exposure_inputs(b, a), _draw_exposure, keep=True)))
     verdict, colour = _verdict(table)
     rows = ""
     if table is not None:

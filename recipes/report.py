@@ -27,6 +27,9 @@ class ReportParams:
 def plan(inventory: Inventory, params: ReportParams, upstream) -> list[Unit]:
     fitted = [u.label for u in upstream.get("binary", [])]
     needs = {f"binary:{k}": ("binary", lab) for k, lab in enumerate(fitted)}
+    # the exposure figures drawn beside the fits (the report draws any that are missing)
+    needs.update({f"figure:{k}": ("figure", u.label)
+                  for k, u in enumerate(upstream.get("figure", [])) if u.label in fitted})
     if params.qc:     # reference products of the fitted exposures only: a bad calibrator
         for stage in QC_STAGES:     # file must not take the night's report down with it
             needs.update({f"{stage}:{k}": (stage, u.label)
@@ -46,13 +49,14 @@ def run(inputs, params: ReportParams) -> dict:
     table = astrometry_table([row_from_binary(a) for a in attrs], code_version=__version__,
                              config=config_hash(a.get("key", "") for a in attrs),
                              flag_doc=FLAG_DOC)
+    # a figure unit that failed on its own is drawn here; a failed fit is said once
+    failed = sorted(m for r, m in inputs.failed.items() if not r.startswith("figure:"))
     path = build_report(inputs.workdir / "report", binaries, table=table, qc=qc,
-                        title=params.title, failed=sorted(inputs.failed.values()),
-                        binary_attrs=attrs)
+                        title=params.title, failed=failed, binary_attrs=attrs)
     return {"index_html": str(path), "n_exposures": len(binaries),
             "failed_inputs": "\n".join(sorted(inputs.failed.values()))}
 
 
-STAGE = Stage(name="report", version="3", params=ReportParams, after=("binary",),
+STAGE = Stage(name="report", version="4", params=ReportParams, after=("binary", "figure"),
               granularity="night", plan=plan, run=run, partial=True,
               doc="QC report: uv coverage, V2/closure phases with model, chi2 maps, astrometry")

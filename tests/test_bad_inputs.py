@@ -199,7 +199,7 @@ def clean(tmp_path_factory, tiny_night):
 @pytest.fixture
 def no_report(monkeypatch):
     monkeypatch.setattr(engine, "_stages",
-                        lambda: [s for s in recipes.STAGES if s.name != "report"])
+                        lambda: [s for s in recipes.STAGES if s.name not in recipes.DRAWING])
 
 
 def _short(stage, label):
@@ -219,7 +219,7 @@ def _check_case(case, tmp_path_factory, tiny_night, clean, tmp_path, capsys):
     damage, code, where, pattern, lost = case
     night = night_path(tmp_path_factory, tiny_night)
     work = copy_work(clean, tmp_path / "work")
-    before = {k: v for k, v in _states(work).items() if k[0] != "report"}
+    before = {k: v for k, v in _states(work).items() if k[0] not in recipes.DRAWING}
     assert {state for state, _ in before.values()} == {"current"}
     bad_file = damage(night)
     capsys.readouterr()

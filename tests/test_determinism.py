@@ -21,14 +21,14 @@ def test_processes_scheduler_equals_threads(tmp_path_factory, tiny_night, tmp_pa
     clean = clean_work(tmp_path_factory, tiny_night)            # threads, first run
     # The report (pictures of the products compared here) is left out to save time.
     monkeypatch.setattr(engine, "_stages",
-                        lambda: [s for s in recipes.STAGES if s.name != "report"])
+                        lambda: [s for s in recipes.STAGES if s.name not in recipes.DRAWING])
     night = night_path(tmp_path_factory, tiny_night)
     summary = reduce(night, tmp_path / "work", scheduler="processes", workers=2,
                      progress=False)
     assert summary.exit_code == 0 and not summary.reused, summary.text()
     assert set(product_files(tmp_path / "work")) == {
-        name for name in product_files(clean) if name[0] != "report"}
-    assert differing_products(tmp_path / "work", clean, skip=("report",)) == []
+        name for name in product_files(clean) if name[0] not in recipes.DRAWING}
+    assert differing_products(tmp_path / "work", clean, skip=recipes.DRAWING) == []
     table = astrometry_rows(tmp_path / "work")
     assert len(table) == 1 and same_array(table, astrometry_rows(clean))
 
@@ -42,7 +42,7 @@ def test_distributed_scheduler_equals_threads(tmp_path_factory, tiny_night, tmp_
     night = night_path(tmp_path_factory, tiny_night)
     work = copy_work(clean, tmp_path / "work")
     monkeypatch.setattr(engine, "_stages",
-                        lambda: [s for s in recipes.STAGES if s.name != "report"])
+                        lambda: [s for s in recipes.STAGES if s.name not in recipes.DRAWING])
     with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
                                   dashboard_address=":0") as cluster:
         summary = reduce(night, work, scheduler=cluster.scheduler_address, force=("average",),
@@ -50,5 +50,5 @@ def test_distributed_scheduler_equals_threads(tmp_path_factory, tiny_night, tmp_
     assert summary.exit_code == 0, summary.text()
     assert {s for s, _ in summary.computed} == {"average", "calibrate", "merge", "binary",
                                                 "tables"}
-    assert differing_products(work, clean, skip=("report",)) == []
+    assert differing_products(work, clean, skip=recipes.DRAWING) == []
     assert same_array(astrometry_rows(work), astrometry_rows(clean))

@@ -23,7 +23,7 @@ def reduced(tmp_path_factory):
     work = night.parent / "work"
     config = night.parent / "fast.toml"
     config.write_text("[binary]\nn_boot = 12\n")        # fewer bootstrap refits: speed only
-    stages = [s for s in recipes.STAGES if s.name != "report"]
+    stages = [s for s in recipes.STAGES if s.name not in recipes.DRAWING]
     summary = reduce(night, work, stages=stages, config=[config], progress=False)
     return night, work, summary
 

@@ -425,3 +425,37 @@ def test_report_stage_rerun_draws_nothing(night, instrument, tmp_path, monkeypat
         if _ == 0:
             assert len(drawn) == 3 and sorted(figures) == ["_draw_night", "_draw_qc"]
     assert drawn == [] and figures == []
+
+
+def test_figure_stage_draws_what_the_report_publishes(night, instrument, tmp_path,
+                                                       monkeypatch):
+    # The figure units, run side by side on threads as the threads scheduler runs them,
+    # draw each exposure's figure once into the report's cache; the report then draws no
+    # exposure figure and publishes those very files, each byte for byte the figure the
+    # report draws on its own.
+    import os
+    from concurrent.futures import ThreadPoolExecutor
+
+    from pipeline import report as rep
+    from recipes import figure
+    _, views, _ = night
+    rep.build_report(tmp_path / "alone", views)
+    drawn = _count_exposure_draws(monkeypatch)
+
+    def figure_unit(k):
+        inputs = Inputs(unit=Unit(label=f"e{k}", needs={"fit": ("binary", "x")}), raw=[],
+                        products={"fit": views[k]}, instrument=instrument, workdir=tmp_path)
+        return figure.run(inputs, figure.FigureParams())["cache_entry"]
+
+    with ThreadPoolExecutor(3) as pool:
+        entries = list(pool.map(figure_unit, range(3)))
+    assert len(drawn) == 3 and len(set(entries)) == 3
+    drawn.clear()
+    assert figure_unit(1) == entries[1] and drawn == []        # a rerun draws nothing
+    rep.build_report(tmp_path / "report", views)
+    assert drawn == []
+    for k, entry in enumerate(entries):
+        name = f"exposure_{k:03d}.png"
+        published = tmp_path / "report" / name
+        assert os.path.samefile(published, tmp_path / "report" / rep.CACHE_DIR / entry)
+        assert published.read_bytes() == (tmp_path / "alone" / name).read_bytes()
