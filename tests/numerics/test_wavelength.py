@@ -68,6 +68,31 @@ def test_scan_recovers_wavelength_bandwidth_phase(rng, resolution, step_waves):
     np.testing.assert_allclose(dc, 2e4, rtol=0.005)
 
 
+def test_each_pixel_fitted_on_its_own(rng):
+    """Every pixel is its own fit: the result of a pixel does not depend on the pixels
+    fitted beside it (each stops iterating when it converges, not when the slowest pixel
+    of its batch does). A noisy, a clean and a faint pixel, together and one by one, also
+    under an OPD window."""
+    wave = np.array([2.05e-6, 2.2e-6, 2.35e-6])
+    n_s = 600
+    opd = (np.arange(n_s) - n_s / 2) * 0.35 * 2.2e-6
+    truth = _interferogram(opd, wave, wave / 500, np.array([0.3, -1.0, 2.0]), 2e4,
+                           np.array([0.9, 0.9, 0.05]))
+    data = rng.poisson(truth) + rng.normal(0, 10, truth.shape)
+    data[:, 1] = truth[:, 1]
+    guess = wave * (1 + np.array([1e-3, -1e-3, 5e-4]))
+    for window in (None, np.array([2e-4, 3e-4, 4e-4])):
+        together = fit_fringe_scan(data, opd[:, None], guess, max_opd=window)
+        for k in range(3):
+            alone = fit_fringe_scan(data[:, k:k + 1], opd[:, None], guess[k:k + 1],
+                                    max_opd=None if window is None else window[k:k + 1])
+            for name in ("wave", "wave_err", "bandwidth", "bandwidth_err", "opd_centre",
+                         "amplitude", "phase", "snr"):
+                np.testing.assert_allclose(getattr(alone, name)[0],
+                                           getattr(together, name)[k], rtol=1e-9,
+                                           err_msg=f"pixel {k} {name}")
+
+
 def test_exposure_smearing_corrected(rng):
     """Samples integrating over a moving OPD: amplitude x sinc(span / lambda) (boxcar
     average of a cosine), which the fits undo."""
