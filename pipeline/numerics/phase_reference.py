@@ -41,6 +41,7 @@ import numpy as np
 from scipy.ndimage import maximum_filter1d, median_filter
 
 from ..geometry import uvw_from_enu
+from .trig import cis, cos_sin
 
 __all__ = ["FringeEstimates", "fringe_estimates", "track_opd", "FLAG_LOW_SNR", "FLAG_GD_EXCURSION",
            "FLAG_FRINGE_JUMP", "FLAG_CLOSURE", "flag_ft_frames", "frame_windows", "window_mean",
@@ -119,13 +120,13 @@ def fringe_estimates(ft_coherent, ft_wave, *, ft_coherent_var,
     gd = -np.angle(cross) / (2 * np.pi * np.mean(np.diff(sigma)))
     weight = np.abs(c) ** 2
     for _ in range(n_refine):
-        rot = c * np.exp(2j * np.pi * sigma * gd[..., None])
+        rot = c * cis(2 * np.pi * sigma * gd[..., None])
         psi = np.angle(rot * np.conj(rot.sum(-1))[..., None])
         wsum = np.maximum(weight.sum(-1, keepdims=True), np.finfo(float).tiny)
         ds = sigma - (weight * sigma).sum(-1, keepdims=True) / wsum
         den = np.maximum((weight * ds ** 2).sum(-1), np.finfo(float).tiny)
         gd = gd - (weight * ds * psi).sum(-1) / (2 * np.pi * den)
-    s = np.sum(c * np.exp(2j * np.pi * (sigma - sigma0) * gd[..., None]), axis=-1)
+    s = np.sum(c * cis(2 * np.pi * (sigma - sigma0) * gd[..., None]), axis=-1)
     noise = np.sqrt(np.maximum(var.sum(-1), np.finfo(float).tiny))
     return FringeEstimates(phase=np.angle(s), group_delay=gd, snr=np.abs(s) / noise,
                            wave_ref=float(1.0 / sigma0))
@@ -363,7 +364,8 @@ def mean_phasor(opd, lo, hi, wave, *, flux=None, baselines=None, block: int = 10
     # microns at most against a band of k only ~0.7 rad/um wide. It is evaluated at a
     # few Chebyshev nodes of the band (about 15 instead of every science wavelength)
     # and interpolated (barycentric, exact to ~1e-13; Trefethen 2013, Approximation
-    # Theory and Approximation Practice, SIAM, ch. 5 and 8). Where the spread would
+    # Theory and Approximation Practice, SIAM, ch. 5 and 8); the cosines and sines are
+    # float32-evaluated (numerics/trig.py, 3e-7 absolute). Where the spread would
     # need as many nodes as there are wavelengths, the wavelengths themselves are used.
     k_mid, k_half = 0.5 * (k.max() + k.min()), max(0.5 * (k.max() - k.min()), 1e-300)
     x = (k - k_mid) / k_half
@@ -389,8 +391,9 @@ def mean_phasor(opd, lo, hi, wave, *, flux=None, baselines=None, block: int = 10
             c1 = min(e, c + block)
             ph = (opd[c:c1] - centre)[:, :, None] * k_nodes              # (t, base, node)
             w = weight[c:c1].T[:, None, :]                               # (base, 1, t)
-            acc += (w @ np.cos(ph).transpose(1, 0, 2))[:, 0]
-            acc += 1j * (w @ np.sin(ph).transpose(1, 0, 2))[:, 0]
+            cos, sin = cos_sin(ph)
+            acc += (w @ cos.transpose(1, 0, 2))[:, 0]
+            acc += 1j * (w @ sin.transpose(1, 0, 2))[:, 0]
         if interp is not None:
             acc = acc @ interp.T                                         # (base, wave)
         acc *= np.exp(1j * centre[:, None] * k)
