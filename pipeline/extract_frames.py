@@ -19,6 +19,7 @@ anything mapping names to arrays works (tests pass dicts).
 
 from __future__ import annotations
 
+import hashlib
 import inspect
 import os
 import threading
@@ -107,6 +108,24 @@ def sky_background(raw, *, frames_per_chunk: int = 16, kappa: float = 5.0) -> np
 
 _SKY_CACHE: dict = {}
 _SKY_LOCK = threading.Lock()
+_PROFILE_CACHE: dict = {}
+
+
+def _trace_profiles_cached(trace_y, profile_sigma, *, n_y):
+    """:func:`numerics.traces.trace_profiles`, kept per process by content (every exposure
+    of a set-up is extracted with its flat's profiles; read-only)."""
+    key = (hashlib.blake2b(trace_y.tobytes() + profile_sigma.tobytes(),
+                           digest_size=16).hexdigest(), trace_y.shape, int(n_y))
+    with _SKY_LOCK:
+        if key in _PROFILE_CACHE:
+            return _PROFILE_CACHE[key]
+    profiles = trace_profiles(trace_y, profile_sigma, n_y=n_y)
+    profiles.setflags(write=False)
+    with _SKY_LOCK:
+        _PROFILE_CACHE[key] = profiles
+        while len(_PROFILE_CACHE) > 4:                 # a night has a few set-ups
+            _PROFILE_CACHE.pop(next(iter(_PROFILE_CACHE)))
+    return profiles
 
 
 def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, background=None,
@@ -157,8 +176,8 @@ def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, backgroun
         raise BadInput(_where(flat, "flat"),
                        f"trace_y of shape {trace_y.shape} does not fit {24 * n_pol} traces "
                        f"and wave_pixel {wave_pixel.shape}")
-    profiles = trace_profiles(trace_y, np.asarray(flat["profile_sigma"], float),
-                              n_y=master.shape[0])
+    profiles = _trace_profiles_cached(trace_y, np.asarray(flat["profile_sigma"], float),
+                                      n_y=master.shape[0])
     rn_e = _read_noise_map(rn_e, good)
     sky_e = 0.0
     if background is not None:

@@ -100,10 +100,14 @@ def fringe_estimates(ft_coherent, ft_wave, *, ft_coherent_var,
         (d sigma the mean wavenumber step). SNR = |S| / sqrt(sum var), S the
         coherent flux summed over pixels after removing the group delay; for
         pure noise it is about 1.3 (Rayleigh mean).
+
+    The per-pixel arithmetic is single precision (complex64, the extract product's own
+    precision; phases to ~1e-6 rad, far below an FT frame's noise), the group delays
+    and the outputs double.
     """
-    c = np.asarray(ft_coherent, complex)
+    c = np.asarray(ft_coherent).astype(np.complex64, copy=False)
     wave = np.asarray(ft_wave, float)
-    var = np.asarray(ft_coherent_var, float)
+    var = np.asarray(ft_coherent_var).astype(np.float32, copy=False)
     if c.ndim != 3 or c.shape[-1] != wave.size or wave.size < 2:
         raise ValueError(f"ft_coherent must be (ft_frame, baseline, ft_wave) with ft_wave of "
                          f"length {wave.size} >= 2, found shape {c.shape}")
@@ -117,19 +121,23 @@ def fringe_estimates(ft_coherent, ft_wave, *, ft_coherent_var,
         c, var = np.where(bad, 0, c), np.where(bad, 0.0, var)
     sigma0 = sigma.mean()
     cross = np.sum(c[..., 1:] * np.conj(c[..., :-1]), axis=-1)
-    gd = -np.angle(cross) / (2 * np.pi * np.mean(np.diff(sigma)))
-    weight = np.abs(c) ** 2
+    gd = -np.angle(cross).astype(float) / (2 * np.pi * np.mean(np.diff(sigma)))
+    weight = c.real ** 2 + c.imag ** 2
+    # the weighted spread of the wavenumbers does not change with the group delay
+    tiny = np.finfo(np.float32).tiny
+    wsum = np.maximum(weight.sum(-1, keepdims=True), tiny)
+    ds = ((sigma - sigma0).astype(np.float32)
+          - (weight * (sigma - sigma0).astype(np.float32)).sum(-1, keepdims=True) / wsum)
+    wds = weight * ds
+    den = np.maximum((wds * ds).sum(-1), tiny).astype(float)
     for _ in range(n_refine):
-        rot = c * cis(2 * np.pi * sigma * gd[..., None])
+        rot = c * cis(2 * np.pi * sigma * gd[..., None], np.complex64)
         psi = np.angle(rot * np.conj(rot.sum(-1))[..., None])
-        wsum = np.maximum(weight.sum(-1, keepdims=True), np.finfo(float).tiny)
-        ds = sigma - (weight * sigma).sum(-1, keepdims=True) / wsum
-        den = np.maximum((weight * ds ** 2).sum(-1), np.finfo(float).tiny)
-        gd = gd - (weight * ds * psi).sum(-1) / (2 * np.pi * den)
-    s = np.sum(c * cis(2 * np.pi * (sigma - sigma0) * gd[..., None]), axis=-1)
-    noise = np.sqrt(np.maximum(var.sum(-1), np.finfo(float).tiny))
-    return FringeEstimates(phase=np.angle(s), group_delay=gd, snr=np.abs(s) / noise,
-                           wave_ref=float(1.0 / sigma0))
+        gd = gd - (wds * psi).sum(-1) / (2 * np.pi * den)
+    s = np.sum(c * cis(2 * np.pi * (sigma - sigma0) * gd[..., None], np.complex64), axis=-1)
+    noise = np.sqrt(np.maximum(var.sum(-1, dtype=float), np.finfo(float).tiny))
+    return FringeEstimates(phase=np.angle(s).astype(float), group_delay=gd,
+                           snr=np.abs(s).astype(float) / noise, wave_ref=float(1.0 / sigma0))
 
 
 def _running_median(a, window: int):

@@ -37,10 +37,11 @@ def cos_sin(phase):
     return np.cos(r).astype(float), np.sin(r).astype(float)
 
 
-def cis(phase):
-    """exp(i phase) as complex128, to within 3e-7 absolute (each of its parts)."""
+def cis(phase, dtype=complex):
+    """exp(i phase) as ``dtype`` (complex128 or complex64), to within 3e-7 absolute (each
+    of its parts)."""
     r = _reduced32(phase)
-    out = np.empty(r.shape, complex)
+    out = np.empty(r.shape, dtype)
     out.real = np.cos(r)
     out.imag = np.sin(r)
     return out
