@@ -166,6 +166,7 @@ def invert_combiner(intensity, p2vm, *, variance=None,
 def _apply(matrix, x):
     """matrix (pol, wave, u, o) applied to x (..., pol, o, wave) -> (..., pol, u, wave).
 
-    A batched matmul (BLAS), several times faster than the equivalent einsum."""
-    xs = np.swapaxes(x, -1, -2)[..., None]                       # (..., pol, wave, o, 1)
-    return np.swapaxes((matrix @ xs)[..., 0], -1, -2)
+    einsum with a contraction path (``optimize=True``: a BLAS product per (pol, wave)) is
+    ~25 % faster here than a batch of matrix-vector products (``matrix @ x[..., None]``)
+    and far faster than the unoptimised einsum."""
+    return np.einsum("pwuo,...pow->...puw", matrix, x, optimize=True)

@@ -344,6 +344,14 @@ class FixedWeightExtractor:
     covered: np.ndarray
     valid: np.ndarray
 
+    def __post_init__(self):
+        # what every chunk of frames uses, made once: the operator with zeros for NaN,
+        # its square (variance propagation), and the pixels near a trace (x, y)
+        op = np.nan_to_num(self.operator)
+        object.__setattr__(self, "_filled", op)
+        object.__setattr__(self, "_squared", op ** 2)
+        object.__setattr__(self, "_near", (self.profiles.max(axis=1) > 1e-3) & self.valid.T)
+
 
 def fixed_weight_extractor(profiles, variance, *, valid=None,
                            min_coverage: float = 0.5) -> FixedWeightExtractor:
@@ -412,14 +420,15 @@ def apply_fixed_weights(extractor: FixedWeightExtractor, frames, *, read_noise,
     d = np.asarray(frames, float)
     ok = extractor.valid
     dx = np.where(ok, d, 0.0).transpose(2, 0, 1)                          # (x, frame, y)
-    op = np.nan_to_num(extractor.operator)
+    op = extractor._filled
     flux = dx @ op.transpose(0, 2, 1)                                     # (x, frame, trace)
     model = flux @ extractor.profiles                                     # (x, frame, y)
     rn2 = np.broadcast_to(np.asarray(read_noise, float) ** 2, ok.shape).T  # (x, y)
     vmod = rn2[:, None, :] + np.maximum(model, 0.0)
-    var = vmod @ (op ** 2).transpose(0, 2, 1)                             # (x, frame, trace)
-    near = (extractor.profiles.max(axis=1) > 1e-3) & ok.T                 # (x, y)
-    z2 = np.where(near[:, None, :], (dx - model) ** 2 / vmod, 0.0)
+    var = vmod @ extractor._squared.transpose(0, 2, 1)                    # (x, frame, trace)
+    z2 = (dx - model) ** 2
+    z2 /= vmod
+    z2 *= extractor._near[:, None, :]
     suspect = (z2 > clip ** 2).any(axis=(0, 2))
     bad = ~extractor.covered.T[:, None, :]                                # (x, 1, trace)
     flux = np.where(bad, np.nan, flux).transpose(1, 2, 0)
