@@ -66,15 +66,19 @@ def _extraction_weights(flux, profiles, var_pix, valid):
     extraction's last iteration (overlap between neighbouring traces neglected).
 
     flux (frame, trace, x) e- (NaN = not extracted); profiles (trace, y, x);
-    var_pix (y, x) e-^2; valid (frame, y, x) bool."""
-    out = np.zeros(profiles.shape)
-    for f_k, ok in zip(np.nan_to_num(np.asarray(flux, float)), valid):
-        model = np.einsum("kyx,kx->yx", profiles, f_k)
-        ivar = np.where(ok, 1.0 / (var_pix + np.maximum(model, 0.0)), 0.0)
-        pw = profiles * ivar
-        norm = np.einsum("kyx,kyx->kx", pw, profiles)
-        out += pw / np.where(norm > 0, norm, np.inf)[:, None, :]
-    return out
+    var_pix (y, x) e-^2; valid (frame, y, x) bool.
+
+    Column by column as matrix products over frames: sum_f P V_f^-1 / n_f =
+    P * ((1 / n) @ V^-1), with the model sum_k P_k f_k and the norms n = P^2 @ V^-1 the
+    same way (no (frame, trace, y, x) array)."""
+    px = np.ascontiguousarray(profiles.transpose(2, 0, 1))                 # (x, trace, y)
+    fx = np.nan_to_num(np.asarray(flux, float)).transpose(2, 0, 1)         # (x, frame, trace)
+    model = fx @ px                                                        # (x, frame, y)
+    ok = np.asarray(valid, bool).transpose(2, 0, 1)                        # (x, frame, y)
+    ivar = np.where(ok, 1.0 / (var_pix.T[:, None, :] + np.maximum(model, 0.0)), 0.0)
+    norm = (px * px) @ ivar.transpose(0, 2, 1)                             # (x, trace, frame)
+    inv_norm = np.where(norm > 0, 1.0 / np.where(norm > 0, norm, 1.0), 0.0)
+    return (px * (inv_norm @ ivar)).transpose(1, 2, 0)                     # (trace, y, x)
 
 
 def sky_background(raw, *, frames_per_chunk: int = 16, kappa: float = 5.0) -> np.ndarray:

@@ -431,3 +431,26 @@ def test_sky_background_is_the_master_dark_estimator_and_computed_once(tiny_nigh
     st = os.stat(sky_path)
     os.utime(sky_path, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))  # touched: read again
     assert sky_background(RawExposure(sky_path)) is not first
+
+
+def test_extraction_weights_return_the_fluxes_and_add_over_frames():
+    # Optimal-extraction weights w = P V^-1 / sum_y P^2 V^-1 (Horne 1986, PASP 98, 609)
+    # applied to a noise-free frame of separated traces give back each trace's flux, in
+    # every column a trace covers; over frames the weights add (here two frames).
+    from pipeline.extract_frames import _extraction_weights
+    from pipeline.numerics.traces import trace_profiles
+    rng = np.random.default_rng(2)
+    n_y, n_x, n_tr = 60, 40, 4
+    centres = np.linspace(8, 52, n_tr)[:, None] + 0.3 * np.sin(np.arange(n_x) / 7)
+    prof = trace_profiles(centres, np.full((n_tr, n_x), 1.3), n_y=n_y)
+    flux = rng.uniform(200, 2000, (2, n_tr, n_x))
+    var_pix = rng.uniform(20, 40, (n_y, n_x))
+    valid = np.ones((2, n_y, n_x), bool)
+    valid[1, 30, 5] = False                                   # a bad pixel in frame 1
+    both = _extraction_weights(flux, prof, var_pix, valid)
+    for f in range(2):
+        w = _extraction_weights(flux[f:f + 1], prof, var_pix, valid[f:f + 1])
+        image = np.einsum("kyx,kx->yx", prof, flux[f]) * valid[f]
+        np.testing.assert_allclose(np.einsum("kyx,yx->kx", w, image), flux[f], rtol=1e-9)
+        both = both - w
+    np.testing.assert_allclose(both, 0.0, atol=1e-12)
