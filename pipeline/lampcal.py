@@ -313,10 +313,14 @@ def _median_filled(a, *, samples_per_block=2_000_000):
     for t0 in range(0, a.shape[1], block):
         y = a[:, t0:t0 + block]
         ok = np.isfinite(y)
-        with warnings.catch_warnings():               # all-NaN pixels: dead, 0 here
-            warnings.simplefilter("ignore", RuntimeWarning)
-            med = np.nanmedian(np.where(ok, y, np.nan), axis=0)
-        out[:, t0:t0 + block] = np.nan_to_num(np.where(ok, y, med))
+        out[:, t0:t0 + block] = y
+        holes = ~ok.all(axis=0)                        # pixels with a NaN sample: medians
+        if holes.any():                                # of those alone (most have none)
+            sub = np.where(ok[:, holes], y[:, holes], np.nan)
+            with warnings.catch_warnings():           # all-NaN pixels: dead, 0 here
+                warnings.simplefilter("ignore", RuntimeWarning)
+                med = np.nanmedian(sub, axis=0)
+            out[:, t0:t0 + block][:, holes] = np.nan_to_num(np.where(np.isnan(sub), med, sub))
     return out
 
 

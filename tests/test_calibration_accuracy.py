@@ -230,3 +230,20 @@ def test_combiner_reuses_the_wavecal_scan_spectra(cal):
     again = combiner_science(beams, scan, dark_beam=dark_beam, dark_scan=dark_scan, flat=flat,
                              wavecal=bare, instrument=inst, setup_name="low", polmode="joint")
     np.testing.assert_allclose(again["p2vm"].data, comb["p2vm"], rtol=1e-10, atol=1e-12)
+
+
+def test_scan_holes_filled_with_the_pixel_median():
+    # Samples not extracted (NaN, inf) take their pixel's median over the scan before the
+    # fringe fit; a pixel never extracted becomes 0 (dead); every other sample is kept.
+    from pipeline.lampcal import _median_filled
+    rng = np.random.default_rng(4)
+    a = rng.normal(100.0, 5.0, (31, 6, 9))
+    a[3, 1, 2], a[7, 1, 2], a[0, 5, 8] = np.nan, np.inf, np.nan
+    a[:, 2, 4] = np.nan
+    for block in (2_000_000, 60):                    # one block of traces, or several
+        got = _median_filled(a, samples_per_block=block)
+        holes = ~np.isfinite(a)
+        np.testing.assert_array_equal(got[~holes], a[~holes])
+        assert got[3, 1, 2] == got[7, 1, 2] == np.median(np.delete(a[:, 1, 2], [3, 7]))
+        assert got[0, 5, 8] == np.median(a[1:, 5, 8])
+        assert np.all(got[:, 2, 4] == 0.0)
