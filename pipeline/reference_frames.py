@@ -97,8 +97,11 @@ def reference_exposure(ext, *, instrument, snr_min: float, max_group_delay: floa
     lon, lat = instrument.site.longitude_deg, np.deg2rad(instrument.site.latitude_deg)
     path = window_mean(np.asarray(ext["metrology_path"], float),
                        np.asarray(ext["metrology_time"], float), start, exp)
-    delay = dual_field_delay(hour_angle_rad(t, attrs["ra_deg"], lon),
-                             hour_angle_rad(t, attrs["ft_ra_deg"], lon), path,
+    h_sc = hour_angle_rad(t, attrs["ra_deg"], lon)
+    # the same sidereal times for the FT star (astropy's apparent sidereal time is the
+    # costly part): h_ft = LST - ra_ft = h_sc + ra_sc - ra_ft, wrapped alike
+    h_ft = (h_sc + np.deg2rad(attrs["ra_deg"] - attrs["ft_ra_deg"]) + np.pi) % (2 * np.pi) - np.pi
+    delay = dual_field_delay(h_sc, h_ft, path,
                              dec_sc_rad=np.deg2rad(attrs["dec_deg"]),
                              dec_ft_rad=np.deg2rad(attrs["ft_dec_deg"]),
                              station_enu_m=np.asarray(ext["station_enu"], float),
