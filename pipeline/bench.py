@@ -260,8 +260,9 @@ def kernel_benchmarks(*, ft_frames: int = 4096, sc_frames: int = 8, setup: str =
     """Throughput of the extraction kernels and time of the binary grid search, on
     arrays of the instrument model's sizes, in this process (run it single-threaded).
 
-    FT: ``counts_to_rate`` + ``invert_combiner`` on one chunk of ``ft_frames``
-    (24 outputs x the FT pixels), uint16 counts. Science: ``optimal_extract`` +
+    FT: the extract stage's FT chunk (``extract_frames._ft_block``: ``counts_to_rate`` +
+    ``invert_combiner``, float32 out) on ``ft_frames`` frames (24 outputs x the FT pixels),
+    uint16 counts. Science: ``optimal_extract`` +
     ``resample_to_grid`` + ``invert_combiner`` on ``sc_frames`` frames of the set-up's
     window (24 traces). Binary: ``grid_chi2`` over the fibre's field (radius = fibre
     FWHM, step lambda_min / 4 B_max, 16 flux ratios, 32 channels), the search of
@@ -271,7 +272,8 @@ def kernel_benchmarks(*, ft_frames: int = 4096, sc_frames: int = 8, setup: str =
     from .instrument import load_instrument
     from .numerics.binary_fit import search_grid
     from .numerics.binary_model import grid_chi2
-    from .numerics.coherent_flux import counts_to_rate, invert_combiner, traces_to_outputs
+    from .extract_frames import _ft_block
+    from .numerics.coherent_flux import invert_combiner, traces_to_outputs
     from .numerics.extraction import optimal_extract, resample_to_grid
     from .numerics.traces import trace_profiles
     inst = load_instrument()
@@ -285,11 +287,9 @@ def kernel_benchmarks(*, ft_frames: int = 4096, sc_frames: int = 8, setup: str =
     dark = np.full((24, ft.n_wave), ft_det.bias_adu)
     rn = np.full((24, ft.n_wave), ft_det.read_noise_e / ft_det.gain_e_per_adu)
 
-    def ft_chunk():
-        rate, var = counts_to_rate(counts, dark, gain_e_per_adu=ft_det.gain_e_per_adu,
-                                   read_noise_adu=rn, dit_s=ft.frame_period_s, poisson="mean")
-        return invert_combiner(rate[:, None], p2vm_ft, variance=var[:, None],
-                               nan_policy="propagate")
+    def ft_chunk():          # what the extract stage runs on each chunk of FT frames
+        return _ft_block(counts, dark, rn, p2vm_ft, gain=ft_det.gain_e_per_adu,
+                         period=ft.frame_period_s)
     cpu, wall = _best_time(ft_chunk, min_s=min_s)
     out["ft_frames_per_s_core"], out["ft_frames_per_s_wall"] = ft_frames / cpu, ft_frames / wall
     # science channel
