@@ -166,7 +166,7 @@ def invert_combiner(intensity, p2vm, *, variance=None,
 def _apply(matrix, x):
     """matrix (pol, wave, u, o) applied to x (..., pol, o, wave) -> (..., pol, u, wave).
 
-    einsum with a contraction path (``optimize=True``: a BLAS product per (pol, wave)) is
-    ~25 % faster here than a batch of matrix-vector products (``matrix @ x[..., None]``)
-    and far faster than the unoptimised einsum."""
+    numpy's einsum kernel is ~25 % faster here than a batch of small matrix-vector
+    products (``matrix @ x[..., None]``, one per frame and wavelength), measured on FT
+    chunks of 4096 frames and science chunks of 16 frames."""
     return np.einsum("pwuo,...pow->...puw", matrix, x, optimize=True)
