@@ -92,27 +92,37 @@ def sky_background(raw, *, frames_per_chunk: int = 16, kappa: float = 5.0) -> np
         raise BadInput(raw.path, "a sky background needs at least 2 frames")
     st = os.stat(raw.path)
     key = (str(raw.path), st.st_size, st.st_mtime_ns, int(frames_per_chunk), float(kappa))
-    with _SKY_LOCK:
-        if key in _SKY_CACHE:
-            return _SKY_CACHE[key]
-    pix = raw.science_pixels(frames_per_chunk)
 
-    def source():
-        return _blocks(pix)
-    centre, _ = robust_centre(source())
-    master, _, _ = clipped_stack(source(), centre, robust_scale(source(), centre), kappa=kappa,
-                                 scale_floor=_SCALE_FLOOR)
-    master.setflags(write=False)
-    with _SKY_LOCK:
-        _SKY_CACHE[key] = master
-        while len(_SKY_CACHE) > 8:                     # a night has a few skies
-            _SKY_CACHE.pop(next(iter(_SKY_CACHE)))
-    return master
+    def make():
+        pix = raw.science_pixels(frames_per_chunk)
+
+        def source():
+            return _blocks(pix)
+        centre, _ = robust_centre(source())
+        master, _, _ = clipped_stack(source(), centre, robust_scale(source(), centre),
+                                     kappa=kappa, scale_floor=_SCALE_FLOOR)
+        return master
+    return _kept(_SKY_CACHE, key, make, limit=8)          # a night has a few skies
 
 
 _SKY_CACHE: dict = {}
-_SKY_LOCK = threading.Lock()
 _PROFILE_CACHE: dict = {}
+_KEPT_LOCK = threading.Lock()
+
+
+def _kept(cache: dict, key, make, *, limit: int) -> np.ndarray:
+    """``make()``, kept in ``cache`` under ``key`` for the life of the process (read-only;
+    the oldest entries dropped beyond ``limit``)."""
+    with _KEPT_LOCK:
+        if key in cache:
+            return cache[key]
+    value = make()
+    value.setflags(write=False)
+    with _KEPT_LOCK:
+        cache[key] = value
+        while len(cache) > limit:
+            cache.pop(next(iter(cache)))
+    return value
 
 
 def _trace_profiles_cached(trace_y, profile_sigma, *, n_y):
@@ -120,16 +130,8 @@ def _trace_profiles_cached(trace_y, profile_sigma, *, n_y):
     of a set-up is extracted with its flat's profiles; read-only)."""
     key = (hashlib.blake2b(trace_y.tobytes() + profile_sigma.tobytes(),
                            digest_size=16).hexdigest(), trace_y.shape, int(n_y))
-    with _SKY_LOCK:
-        if key in _PROFILE_CACHE:
-            return _PROFILE_CACHE[key]
-    profiles = trace_profiles(trace_y, profile_sigma, n_y=n_y)
-    profiles.setflags(write=False)
-    with _SKY_LOCK:
-        _PROFILE_CACHE[key] = profiles
-        while len(_PROFILE_CACHE) > 4:                 # a night has a few set-ups
-            _PROFILE_CACHE.pop(next(iter(_PROFILE_CACHE)))
-    return profiles
+    return _kept(_PROFILE_CACHE, key, lambda: trace_profiles(trace_y, profile_sigma, n_y=n_y),
+                 limit=4)                                 # a night has a few set-ups
 
 
 def extract_science(raw, *, dark, flat, wavecal, combiner, instrument, background=None,

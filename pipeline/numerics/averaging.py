@@ -52,6 +52,8 @@ from typing import Literal
 
 import numpy as np
 
+from .trig import wrap_phase
+
 __all__ = ["ExposureAverage", "average_exposure", "bootstrap_counts", "TRIANGLES", "BASELINES"]
 
 BASELINES = ((0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3))
@@ -115,13 +117,6 @@ def bootstrap_counts(n_frame: int, *, n_boot: int, seed: int) -> np.ndarray:
     counts = np.zeros((n_boot, n_frame))
     np.add.at(counts, (np.arange(n_boot)[:, None], idx), 1.0)
     return counts
-
-
-def _wrap(phi):
-    """phi wrapped to [-pi, pi] (whole turns removed in float64; a complex exponential
-    and its argument cost ten times more)."""
-    turns = np.rint(np.asarray(phi, float) * (1 / (2 * np.pi)))
-    return phi - (2 * np.pi) * turns
 
 
 def _sums(weights, x):
@@ -270,12 +265,12 @@ def average_exposure(coherent, coherent_var, flux, *, frame_valid=None, contrast
 
     def err(x, g, phase=False):
         d = x[1:] - x[0]
-        return np.std(_wrap(d) if phase else d, axis=0, ddof=1) * np.sqrt(g)
+        return np.std(wrap_phase(d) if phase else d, axis=0, ddof=1) * np.sqrt(g)
 
     def cov(x, g, phase=False):
         d = x[1:] - x[0]
         if phase:
-            d = _wrap(d)
+            d = wrap_phase(d)
         d = np.moveaxis((d - d.mean(axis=0)) * np.sqrt(g), 0, -1)          # (p, k, w, b)
         return d @ np.swapaxes(d, -1, -2) / (n_boot - 1)                  # (p, k, w, w)
 

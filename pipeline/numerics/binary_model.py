@@ -25,6 +25,8 @@ from scipy.special import jv
 from pipeline.skymodel import (MAS, binary_visibility, fibre_coupling, point_phasor,
                                smearing_envelope, uniform_disk_visibility)
 
+from .trig import wrap_phase as wrap      # (-pi, pi]; re-exported for the fits
+
 __all__ = ["BASELINES", "TRIANGLES", "REF_WAVE_M", "PARAM_NAMES", "flux_ratio_law",
            "binary_observables", "binary_observables_batch", "axis_phasors", "grid_chi2",
            "make_residual", "wrap"]
@@ -33,12 +35,6 @@ BASELINES = ((0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3))
 TRIANGLES = ((0, 1, 2), (0, 1, 3), (0, 2, 3), (1, 2, 3))
 REF_WAVE_M = 2.2e-6
 """Reference wavelength of the flux ratio and of the fibre FWHM, metres."""
-
-
-def wrap(angle_rad):
-    """Wrap angles to (-pi, pi]."""
-    out = np.pi - np.remainder(np.pi - np.asarray(angle_rad, float), 2 * np.pi)
-    return out
 
 
 def flux_ratio_law(wave_m, flux_ratio, slope=0.0):

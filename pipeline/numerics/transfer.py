@@ -35,14 +35,11 @@ from scipy.special import jv
 
 from pipeline.skymodel import MAS, uniform_disk_visibility
 
+from .trig import wrap_phase
+
 __all__ = ["uniform_disk_vis2", "transfer_function", "interpolate_in_time",
            "interpolation_weights", "interpolate_phase_in_time", "calibrate_vis2",
            "calibrate_phase", "wrap_phase", "fit_phase_zero_point"]
-
-
-def wrap_phase(phi):
-    """Wrap radians to (-pi, pi]."""
-    return np.angle(np.exp(1j * np.asarray(phi)))
 
 
 def uniform_disk_vis2(u_m, v_m, wave_m, diameter_mas: float, diameter_err_mas: float = 0.0):

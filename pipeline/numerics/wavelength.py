@@ -338,7 +338,7 @@ def _gauss_newton(y, o, span, sig, dch, oc, use, n_iter=8, tol=1e-6):
         jtj = jac_w.transpose(0, 2, 1) @ jac                               # (pix, 7, 7)
         nh = np.sqrt(np.maximum(np.einsum("pii->pi", jtj), 1e-300))
         lin[act], norm[act] = lh[rows], nh[rows]
-        jtj_n[act] = (jtj / nh[:, :, None] / nh[:, None, :])[rows]
+        jtj_n[act] = jtj[rows] / nh[rows, :, None] / nh[rows, None, :]
         resvar[act] = np.sum(res[rows] ** 2, 1) / np.maximum(n_used[act] - 7, 1)
         going = ~last[act] if it < n_iter else np.zeros(act.size, bool)
         if not going.any():

@@ -28,3 +28,15 @@ def test_sinc_matches_numpy(rng):
     got = sinc(x)
     np.testing.assert_allclose(got, np.sinc(x), rtol=0, atol=3e-7)
     assert got[0] == 1.0 and got.dtype == np.float64
+
+
+def test_wrap_phase_into_minus_pi_pi(rng):
+    # the argument of exp(i phi) (numpy float64 reference), in (-pi, pi]; +-pi -> pi
+    from pipeline.numerics.trig import wrap_phase
+    phi = np.concatenate([rng.uniform(-1e4, 1e4, 100_000), [np.pi, -np.pi, 3 * np.pi, 0.0]])
+    got = wrap_phase(phi)
+    assert np.all((got > -np.pi) & (got <= np.pi))
+    d = np.angle(np.exp(1j * (got - phi)))          # same angle: a multiple of 2 pi apart
+    assert np.max(np.abs(d)) < 1e-11
+    assert got[-4] == np.pi and got[-3] == np.pi and abs(got[-2] - np.pi) < 1e-12
+    assert np.isnan(wrap_phase(np.array([np.nan, np.inf]))).all()
