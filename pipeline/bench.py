@@ -180,8 +180,10 @@ def _child(request: dict) -> dict:
         summary = reduce(request["night"], request["work"], config=request.get("config"), **kw)
     seconds = time.perf_counter() - t0
     me = resource.getrusage(resource.RUSAGE_SELF)
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN)     # the helper processes, waited for
     ru = me.ru_maxrss * 1024                                                # KiB on Linux
-    return {"seconds": seconds, "cpu_s": me.ru_utime + me.ru_stime, "self_max_rss_bytes": ru,
+    return {"seconds": seconds, "self_max_rss_bytes": ru,
+            "cpu_s": me.ru_utime + me.ru_stime, "children_cpu_s": kids.ru_utime + kids.ru_stime,
             "computed": len(summary.computed), "reused": len(summary.reused),
             "failed": [list(f) for f in summary.failed][:20],
             "n_failed": len(summary.failed),
@@ -469,7 +471,7 @@ def main(argv=None) -> int:
         res = _check(run_child({"what": "reduce", "night": str(night), "work": str(_fresh(full)),
                                 "config": [str(config)]}, env=_reduce_env()), "reduce")
         results.update(reduce_s=res["seconds"], reduce_wall_s=res["wall_s"],
-                       reduce_cpu_s=res["cpu_s"],
+                       reduce_cpu_s=res["cpu_s"] + res["children_cpu_s"],
                        reduce_failed=res["n_failed"],
                        peak_rss_gib=max(res["tree_peak_rss_bytes"],
                                         res["self_max_rss_bytes"]) / GIB)
@@ -488,7 +490,7 @@ def main(argv=None) -> int:
             res = _check(run_child({"what": "rerun", "work": str(full), "stage": "binary"},
                                    env=_reduce_env()), "rerun")
             results.update({f"{prefix}_s": res["seconds"], f"{prefix}_computed": res["computed"],
-                            f"{prefix}_cpu_s": res["cpu_s"],
+                            f"{prefix}_cpu_s": res["cpu_s"] + res["children_cpu_s"],
                             f"{prefix}_stages": res["computed_stages"],
                             f"{prefix}_param": f"{name} = {value}"})
             results[f"{prefix}_ratio"] = res["seconds"] / save()["reduce_s"]

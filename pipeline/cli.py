@@ -48,6 +48,9 @@ def _parser() -> argparse.ArgumentParser:
     s.add_argument("--workers", type=int, default=None, help="local worker count")
     s.add_argument("--force", action="append", default=[], metavar="STAGE",
                    help="recompute this stage and its dependents even if current")
+    s.add_argument("--no-helper-processes", dest="helper_processes", action="store_false",
+                   help="threads scheduler: run every unit on its thread, none in "
+                        "helper processes (e.g. to debug a fit or a figure)")
 
     s = sub.add_parser("status", help="state of every product of a work directory")
     s.add_argument("workdir")
@@ -58,6 +61,9 @@ def _parser() -> argparse.ArgumentParser:
     s.add_argument("stage")
     s.add_argument("--scheduler", default="threads")
     s.add_argument("--workers", type=int, default=None)
+    s.add_argument("--no-helper-processes", dest="helper_processes", action="store_false",
+                   help="threads scheduler: run every unit on its thread, none in "
+                        "helper processes (e.g. to debug a fit or a figure)")
     return p
 
 
@@ -96,13 +102,15 @@ def _cmd_reduce(args) -> int:
     from .engine import reduce
     return _report(reduce(args.night_dir, args.workdir, config=args.config,
                           scheduler=args.scheduler, workers=args.workers,
-                          force=tuple(args.force), debug=args.debug), args.workdir)
+                          force=tuple(args.force), debug=args.debug,
+                          helper_processes=args.helper_processes), args.workdir)
 
 
 def _cmd_rerun(args) -> int:
     from .engine import rerun
     return _report(rerun(args.workdir, args.stage, scheduler=args.scheduler,
-                         workers=args.workers, debug=args.debug), args.workdir)
+                         workers=args.workers, debug=args.debug,
+                         helper_processes=args.helper_processes), args.workdir)
 
 
 def _cmd_status(args) -> int:

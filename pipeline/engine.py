@@ -279,6 +279,72 @@ def _execute(spec: dict, upstream: dict) -> dict:
                 "root": root, "seconds": time.perf_counter() - t0}
 
 
+class _Helpers:
+    """Helper processes for the units of ``Stage.apart`` stages under the threads
+    scheduler.
+
+    A pure-Python loop (an lmfit refinement) or a matplotlib drawing holds the GIL for
+    most of its time; on a thread it stalls every other unit's Python between its numpy
+    calls. Such a unit is sent whole (:func:`_execute`: read inputs, run, write the
+    product) to one of ``n`` spawned processes, made on first use; its thread waits
+    without holding the GIL. Where no process can be made (in a daemonic process, a dask
+    worker's) units run on their thread.
+
+    A helper that dies (killed, or a crash in C) takes down the units it was running
+    and the pool; each of them is run once more alone in a fresh process, so only the
+    unit that kills its process again fails (recorded like a lost dask worker)."""
+
+    def __init__(self, n: int):
+        import threading
+        self.n, self.pool, self.none = n, None, False
+        self.lock = threading.Lock()
+
+    def execute(self, spec: dict, upstream: dict) -> dict:
+        from concurrent.futures import ProcessPoolExecutor
+        from concurrent.futures.process import BrokenProcessPool
+        pool = self._pool()
+        if pool is None:
+            return _execute(spec, upstream)
+        try:
+            return pool.submit(_execute, spec, upstream).result()
+        except BrokenProcessPool:
+            with self.lock:
+                if self.pool is pool:
+                    self.pool = None                # the next units get a new pool
+        log.warning("a helper process died running %s/%s or a unit beside it; running it "
+                    "again alone", spec["stage"], spec["unit"].label)
+        with ProcessPoolExecutor(1, mp_context=_spawn()) as alone:
+            try:
+                return alone.submit(_execute, spec, upstream).result()
+            except BrokenProcessPool as exc:
+                return _failed_result(spec, exc)
+
+    def _pool(self):
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor
+        with self.lock:
+            if self.pool is None and not self.none:
+                if multiprocessing.current_process().daemon:
+                    self.none = True                # no children in a daemonic process
+                else:
+                    self.pool = ProcessPoolExecutor(self.n, mp_context=_spawn())
+            return self.pool
+
+    def close(self) -> None:
+        """Stop the processes and wait for them (their CPU time is then counted among
+        this process's children's)."""
+        with self.lock:
+            pool, self.pool = self.pool, None
+        if pool is not None:
+            pool.shutdown(wait=True)
+
+
+def _spawn():
+    """Fresh interpreters (not forks of a process that runs threads)."""
+    import multiprocessing
+    return multiprocessing.get_context("spawn")
+
+
 class _UnitError(Exception):
     """A unit that cannot run (planning problem, failed upstream)."""
 
@@ -472,8 +538,11 @@ def _compute_distributed(jobs: list, done: dict, address: str, progress: bool,
 
 
 def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None,
-           force=(), debug=False, progress=None, stages=None) -> RunSummary:
+           force=(), debug=False, progress=None, stages=None,
+           helper_processes=True) -> RunSummary:
     """Reduce a night into ``workdir``; returns the summary (never raises for a unit).
+    ``helper_processes``: under the threads scheduler, run the units of ``Stage.apart``
+    stages in helper processes (:class:`_Helpers`); False: on the threads.
 
     Raises
     ------
@@ -512,6 +581,8 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
             summary.failed += [(name, "(plan)", msg) for name, msg in plan.stage_errors.items()]
             values, tasks, jobs = {}, [], []
             distributed = scheduler.startswith(("tcp://", "tls://"))
+            helpers = (_Helpers(workers or os.cpu_count() or 1)
+                       if scheduler == "threads" and helper_processes else None)
             for uid, pu in plan.units.items():
                 if uid not in forced and pu.error is None and plan.is_current(pu):
                     values[uid] = {"stage": pu.stage, "label": pu.unit.label, "key": pu.key,
@@ -528,7 +599,8 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
                     jobs.append((uid, spec, dict(pu.upstream)))
                     continue
                 up = {role: values[ref] for role, ref in pu.upstream.items() if ref in values}
-                task = dask.delayed(_execute, pure=False)(
+                run = helpers.execute if stage.apart and helpers is not None else _execute
+                task = dask.delayed(run, pure=False)(
                     spec, up, dask_key_name=f"{pu.stage}:{pu.unit.label}:{pu.key[:8]}")
                 values[uid] = task
                 tasks.append((uid, task))
@@ -537,8 +609,12 @@ def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None
                           if jobs else {})
                 finished = [(uid, by_uid[uid]) for uid, _, _ in jobs]
             else:
-                results = (_compute([t for _, t in tasks], scheduler, workers, progress, debug)
-                           if tasks else [])
+                try:
+                    results = (_compute([t for _, t in tasks], scheduler, workers, progress,
+                                        debug) if tasks else [])
+                finally:
+                    if helpers is not None:
+                        helpers.close()
                 finished = [(uid, res) for (uid, _), res in zip(tasks, results)]
             for uid, res in finished:
                 if res["state"] == "failed":

@@ -111,6 +111,11 @@ class Stage:
         products that exist, and the failed ones are listed in ``Inputs.failed`` instead
         of failing the unit. Such a product is stale again as soon as a missing input
         appears.
+    apart : bool
+        The stage's code holds the GIL most of its time (pure-Python fitting loops,
+        matplotlib drawing): under the threads scheduler its units run in helper
+        processes, so they do not stall the numerical units running on the other
+        threads (see ``engine._Helpers``). Same products either way.
     """
     name: str
     version: str
@@ -121,3 +126,4 @@ class Stage:
     run: Callable
     doc: str = ""
     partial: bool = False
+    apart: bool = False

@@ -82,5 +82,5 @@ def run(inputs, params: BinaryParams) -> dict:
 
 
 STAGE = Stage(name="binary", version="7", params=BinaryParams, after=("calibrate",),
-              granularity="exposure", plan=plan, run=run,
+              granularity="exposure", plan=plan, run=run, apart=True,
               doc="binary fit per science exposure: global search, lmfit, errors, flags")

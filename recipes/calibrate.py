@@ -74,6 +74,6 @@ def run(inputs, params: CalibrateParams) -> dict:
 
 
 STAGE = Stage(name="calibrate", version="3", params=CalibrateParams, after=("average",),
-              granularity="exposure", plan=plan, run=run,
+              granularity="exposure", plan=plan, run=run, apart=True,
               doc="transfer function and phase zero-points from calibrators; calibrated "
                   "observables and OIFITS v2 per science exposure")

@@ -33,5 +33,5 @@ def run(inputs, params: FigureParams) -> dict:
 
 
 STAGE = Stage(name="figure", version="1", params=FigureParams, after=("binary",),
-              granularity="exposure", plan=plan, run=run,
+              granularity="exposure", plan=plan, run=run, apart=True,
               doc="QC figure of each exposure's binary fit, drawn when the fit is done")

@@ -95,3 +95,16 @@ def _crasher_run(inputs, params):
 
 CRASHER = Stage("crasher", "1", ConsumerParams, ("dark",), "setup", _crasher_plan,
                 _crasher_run)
+
+
+def _where_run(inputs, params):
+    return {**_consumer_run(inputs, params), "pid": os.getpid()}
+
+
+WHERE = Stage("where", "1", ConsumerParams, ("dark",), "setup", _consumer_plan, _where_run,
+              apart=True)
+"""The consumer, run in helper processes (``Stage.apart``); records the process id."""
+
+APART_CRASHER = Stage("apartcrash", "1", ConsumerParams, ("dark",), "setup", _crasher_plan,
+                      _crasher_run, apart=True)
+"""The crasher, run in helper processes: its first unit kills its process."""

@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from fake_stages import CONSUMER, CRASHER, SLOW
+from fake_stages import APART_CRASHER, CONSUMER, CRASHER, SLOW, WHERE
 from pipeline.engine import (LOCK_FILE, LOG_FILE, Locked, build_plan, reduce, rerun, status)
 from pipeline.errors import ConfigError
 from pipeline.store import ProductView, is_complete
@@ -204,6 +204,39 @@ def test_processes_scheduler_gives_the_same_products(night, tmp_path):
     for path in (tmp_path / "t" / "dark").glob("*.h5"):
         a, b = ProductView(path), ProductView(tmp_path / "p" / "dark" / path.name)
         _assert_equal(a["master"], b["master"])
+
+
+def test_apart_stage_runs_in_helper_processes_with_the_same_products(night, tmp_path):
+    """Units of a ``Stage.apart`` stage run in helper processes under the threads
+    scheduler (the product records the process that ran it), write the products they
+    write on a thread, and leave no process behind."""
+    import multiprocessing
+    stages = [inventory.STAGE, dark.STAGE, WHERE]
+    apart = reduce(night, tmp_path / "apart", stages=stages, progress=False)
+    inline = reduce(night, tmp_path / "inline", stages=stages, progress=False,
+                    helper_processes=False)
+    assert apart.exit_code == inline.exit_code == 0
+    paths = sorted((tmp_path / "apart" / "where").glob("*.h5"))
+    assert len(paths) == 2
+    for path in paths:
+        a, b = ProductView(path), ProductView(tmp_path / "inline" / "where" / path.name)
+        assert a.attrs["pid"] != os.getpid() and b.attrs["pid"] == os.getpid()
+        _assert_equal(a["level"], b["level"])
+    assert multiprocessing.active_children() == []
+
+
+def test_a_dying_helper_process_fails_its_unit_only(night, tmp_path):
+    """A unit that kills its helper process fails with a record naming the loss; the
+    units beside it are run again and succeed, and this process goes on."""
+    stages = [inventory.STAGE, dark.STAGE, APART_CRASHER]
+    run = reduce(night, tmp_path / "work", stages=stages, progress=False)
+    crashed = [f for f in run.failed if f[0] == "apartcrash"]
+    assert len(crashed) == 1 and "BrokenProcessPool" in crashed[0][2], run.text()
+    others = [uid for uid in run.computed if uid[0] == "apartcrash"]
+    assert len(others) == 1 and others[0][1] != crashed[0][1]
+    record = [r for r in status(tmp_path / "work", stages=stages)
+              if r["stage"] == "apartcrash" and r["name"] == crashed[0][1]]
+    assert record and record[0]["state"] == "failed"
 
 
 def test_tiny_night_darks_against_truth(tiny_night, tmp_path):
