@@ -326,6 +326,10 @@ class _Helpers:
             if self.pool is None and not self.none:
                 if multiprocessing.current_process().daemon:
                     self.none = True                # no children in a daemonic process
+                elif not _main_is_importable():
+                    self.none = True
+                    log.info("helper processes not used: the main script has no "
+                             "'if __name__ == \"__main__\":' guard")
                 else:
                     self.pool = ProcessPoolExecutor(self.n, mp_context=_spawn())
             return self.pool
@@ -337,6 +341,22 @@ class _Helpers:
             pool, self.pool = self.pool, None
         if pool is not None:
             pool.shutdown(wait=True)
+
+
+def _main_is_importable() -> bool:
+    """Whether a spawned process can import ``__main__`` (as Python's spawn does)
+    without starting a reduction itself: run as a module (``-m``, a console script's
+    guarded file), interactive (no file), or a script with a ``__main__`` guard."""
+    main = sys.modules.get("__main__")
+    if getattr(getattr(main, "__spec__", None), "name", None):
+        return True
+    path = getattr(main, "__file__", None)
+    if not path:
+        return True
+    try:
+        return "__main__" in Path(path).read_text(errors="ignore")
+    except OSError:
+        return False
 
 
 def _spawn():

@@ -225,6 +225,33 @@ def test_apart_stage_runs_in_helper_processes_with_the_same_products(night, tmp_
     assert multiprocessing.active_children() == []
 
 
+UNGUARDED_SCRIPT = """
+import os, sys
+sys.path.insert(0, {tests!r})
+from fake_stages import WHERE
+from recipes import dark, inventory
+from pipeline.engine import reduce
+from pipeline.store import ProductView
+from pathlib import Path
+run = reduce({night!r}, {work!r}, stages=[inventory.STAGE, dark.STAGE, WHERE], progress=False)
+pids = [ProductView(p).attrs["pid"] for p in Path({work!r}, "where").glob("*.h5")]
+print(run.exit_code, len(pids), all(p == os.getpid() for p in pids))
+"""
+
+
+def test_unguarded_script_keeps_units_on_threads(night, tmp_path):
+    """A script without an ``if __name__ == "__main__":`` guard would be run again by
+    each spawned helper (Python's spawn imports the main script): its units run on the
+    threads instead, and the reduction succeeds."""
+    script = tmp_path / "unguarded.py"
+    script.write_text(UNGUARDED_SCRIPT.format(tests=str(Path(__file__).parent),
+                                              night=str(night), work=str(tmp_path / "w")))
+    out = subprocess.run([sys.executable, str(script)], capture_output=True, text=True,
+                         cwd=Path(__file__).parents[1], timeout=300)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.split() == ["0", "2", "True"]
+
+
 def test_a_dying_helper_process_fails_its_unit_only(night, tmp_path):
     """A unit that kills its helper process fails with a record naming the loss; the
     units beside it are run again and succeed, and this process goes on."""
