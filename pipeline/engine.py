@@ -296,7 +296,7 @@ class _Helpers:
 
     def __init__(self, n: int):
         import threading
-        self.n, self.pool, self.none = n, None, False
+        self.n, self.pool, self.unavailable = n, None, False
         self.lock = threading.Lock()
 
     def execute(self, spec: dict, upstream: dict) -> dict:
@@ -323,11 +323,11 @@ class _Helpers:
         import multiprocessing
         from concurrent.futures import ProcessPoolExecutor
         with self.lock:
-            if self.pool is None and not self.none:
+            if self.pool is None and not self.unavailable:
                 if multiprocessing.current_process().daemon:
-                    self.none = True                # no children in a daemonic process
+                    self.unavailable = True                # no children in a daemonic process
                 elif not _main_is_importable():
-                    self.none = True
+                    self.unavailable = True
                     log.info("helper processes not used: the main script has no "
                              "'if __name__ == \"__main__\":' guard")
                 else:
