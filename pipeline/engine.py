@@ -467,7 +467,9 @@ def _compute(tasks: list, scheduler: str, workers: int | None, progress: bool,
     if scheduler not in ("threads", "processes", "synchronous"):
         raise ConfigError("--scheduler", f"expected threads, processes or tcp://HOST:PORT, "
                                          f"found {scheduler!r}")
-    kw = {"scheduler": scheduler}
+    from dask.base import named_schedulers
+    # the function, not its name: a name makes dask import distributed to look for a client
+    kw = {"scheduler": named_schedulers[scheduler]}
     if workers:
         kw["num_workers"] = workers
 

@@ -32,6 +32,7 @@ from .numerics.darks import clipped_stack, master_dark, robust_centre, robust_sc
 from .numerics.extraction import optimal_extract, resample_to_grid
 from .numerics.traces import trace_profiles
 from .stage import Array
+from .store import computed_here
 
 # the master-dark estimator's floor on the clipping scale (numerics.darks.master_dark)
 _SCALE_FLOOR = inspect.signature(master_dark).parameters["scale_floor"].default
@@ -45,7 +46,7 @@ def _where(view, default):
 
 def _blocks(dask_array):
     for block in dask_array.blocks:
-        yield np.asarray(block.compute(scheduler="synchronous"), float)
+        yield np.asarray(computed_here(block), float)
 
 
 def _read_noise_map(rn, good, *, noisy_factor: float = 3.0):

@@ -67,6 +67,10 @@ def hour_angle_rad(time, ra_deg: float, longitude_deg: float) -> np.ndarray:
     """Hour angle of right ascension ``ra_deg`` at ``time`` seen from ``longitude_deg``.
 
     Uses the apparent local sidereal time of astropy (IERS tables bundled, no download).
+    For many times within a day it is evaluated at the first, middle and last time and
+    interpolated linearly (the sidereal rate is constant; nutation bends it by ~1e-8 rad
+    over a day at most), provided the middle point agrees with the line to
+    ``_LST_LINEAR_TOL``; otherwise at every time.
 
     Parameters
     ----------
@@ -77,10 +81,37 @@ def hour_angle_rad(time, ra_deg: float, longitude_deg: float) -> np.ndarray:
     -------
     h : ndarray, same shape as time, radians, wrapped to [-pi, pi)
     """
-    import astropy.units as u
-    lst = time.sidereal_time("apparent", longitude=longitude_deg * u.deg).to_value(u.rad)
+    lst = _local_sidereal_rad(time, longitude_deg)
     h = np.asarray(lst) - np.deg2rad(ra_deg)
     return (h + np.pi) % (2 * np.pi) - np.pi
+
+
+_LST_LINEAR_TOL = 1e-9      # rad: 0.2 mas, far below any fringe-phase or delay requirement
+
+
+def _local_sidereal_rad(time, longitude_deg: float) -> np.ndarray:
+    import astropy.units as u
+
+    def exact(t):
+        return np.asarray(t.sidereal_time("apparent", longitude=longitude_deg * u.deg)
+                          .to_value(u.rad))
+    if time.size < 8:
+        return exact(time)
+    # elapsed atomic time: continuous across a leap second, as UT1 (and so LST) is
+    elapsed = (time - time.ravel()[0]).to_value(u.day)
+    first, last = int(np.argmin(elapsed)), int(np.argmax(elapsed))
+    span = elapsed.flat[last] - elapsed.flat[first]
+    if not 0 < span < 1.0:
+        return exact(time)
+    ends = time.ravel()[[first, last]]
+    mid = ends[0] + (ends[1] - ends[0]) * 0.5
+    lst0, lst1, lst_mid = exact(ends.insert(2, mid))
+    turn = 2 * np.pi
+    rise = (lst1 - lst0) % turn                       # less than a turn: span < 1 day
+    if abs((lst_mid - lst0) % turn - 0.5 * rise) > _LST_LINEAR_TOL:
+        return exact(time)
+    frac = (elapsed - elapsed.flat[first]) / span
+    return (lst0 + rise * frac) % turn
 
 
 def parallactic_angle_rad(hour_angle, dec_rad, latitude_rad):

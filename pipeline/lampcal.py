@@ -29,6 +29,7 @@ from .numerics.traces import (combine_valid, detector_response, find_traces, pix
 from .numerics.wavelength import (ScanFit, baseline_bandwidth, common_grid,
                                   fit_dispersion_law, fit_fringe_scan, fringe_phasor)
 from .stage import Array
+from .store import computed_here
 
 __all__ = ["check_raw", "flat_products", "scan_spectra", "frame_opd", "wavecal_products",
            "wavecal_science", "wavecal_ft", "combiner_science", "combiner_ft",
@@ -51,7 +52,7 @@ def check_raw(raws, *, kind, setup=None, polmode=None):
 
 def _chunks(raw, frames_per_chunk):
     for block in raw.science_pixels(frames_per_chunk).blocks:
-        yield np.asarray(block.compute(scheduler="synchronous"), float)
+        yield np.asarray(computed_here(block), float)
 
 
 def _nominal_trace_y(setup, polmode, n_out):

@@ -20,6 +20,7 @@ from .numerics.phase_reference import (FLAG_CLOSURE, FLAG_FRINGE_JUMP, FLAG_GD_E
                                        reference_coherent, track_opd, window_fraction,
                                        window_mean)
 from .stage import Array
+from .store import computed_here
 
 __all__ = ["ft_estimates", "reference_exposure"]
 
@@ -29,7 +30,7 @@ def _read(ext, name):
 
 
 def _load(a):
-    return np.asarray(a.compute(scheduler="synchronous") if hasattr(a, "compute") else a)
+    return computed_here(a) if hasattr(a, "compute") else np.asarray(a)
 
 
 def ft_estimates(ext, *, chunk: int = 8192):

@@ -120,7 +120,7 @@ def _write_dataset(group, name: str, item, pending: list):
         squeeze = False
         if data.size:                   # judged on the first chunk along the first axis
             first = data[:data.chunks[0][0]] if data.ndim else data
-            squeeze = worth_compressing(first.compute(scheduler="synchronous"))
+            squeeze = worth_compressing(computed_here(first))
         dset = group.create_dataset(name, shape=data.shape, dtype=data.dtype,
                                     chunks=chunks if data.size else None,
                                     compression=COMPRESSION if squeeze else None)
@@ -144,14 +144,23 @@ def _write_dataset(group, name: str, item, pending: list):
         dset.attrs["doc"] = arr.doc
 
 
+def computed_here(a) -> np.ndarray:
+    """A dask array computed in the calling thread. The scheduler is passed as a
+    function: a scheduler named by a string makes dask import ``distributed`` (about a
+    second of CPU per process) to look for a client first."""
+    from dask.local import get_sync
+    return np.asarray(a.compute(scheduler=get_sync))
+
+
 def _store_pending(pending):
     """Write the dask datasets of one product in one pass, chunk by chunk, in this thread:
     work they share (e.g. one task feeding several datasets) is computed once, and
     memory stays a few chunks whatever the size."""
     if pending:
         import dask.array as da
+        from dask.local import get_sync
         da.store([d for d, _ in pending], [t for _, t in pending], lock=threading.Lock(),
-                 scheduler="synchronous")
+                 scheduler=get_sync)
 
 
 def _attr_value(value):

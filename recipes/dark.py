@@ -9,6 +9,7 @@ from pipeline.errors import BadInput
 from pipeline.inventory import Inventory, dark_label, ft_dark_label
 from pipeline.numerics.darks import master_dark
 from pipeline.stage import Array, Stage, Unit
+from pipeline.store import computed_here
 
 
 @dataclass(frozen=True)
@@ -59,7 +60,7 @@ def run(inputs, params: DarkParams) -> dict:
             raise BadInput(inputs.unit.raw[0], "no dark file has usable fringe-tracker data: "
                            + "; ".join(skipped))
         axes, dit, hot = ("output", "ft_wave"), meta["period"], params.ft_hot_rate_adu_s
-    res = master_dark(lambda: (b.compute(scheduler="synchronous") for b in blocks), dit=dit,
+    res = master_dark(lambda: (computed_here(b) for b in blocks), dit=dit,
                       kappa=params.kappa, hot_rate=hot, hot_sigma=params.hot_sigma,
                       low_level=params.dead_low_adu, noisy_factor=params.noisy_factor,
                       quiet_factor=params.quiet_factor, false_alarm=params.false_alarm)

@@ -61,3 +61,20 @@ def test_uvw_is_a_rotation(instrument, rng):
     np.testing.assert_allclose(np.linalg.norm(uvw, axis=-1),
                                np.broadcast_to(np.linalg.norm(b, axis=-1), uvw.shape[:2]),
                                rtol=1e-12)
+
+
+@pytest.mark.parametrize("start, span_s", [("2026-04-18T02:10:00", 600.0),     # one exposure
+                                            ("2026-04-18T00:00:00", 6 * 3600.0),  # a night
+                                            ("2016-12-31T23:50:00", 1200.0)])     # leap second
+def test_hour_angle_of_many_times_matches_astropy_at_each(instrument, start, span_s):
+    # reference: astropy's apparent sidereal time evaluated at every time (the function
+    # evaluates it at three and interpolates when the sidereal time is linear to 1e-9 rad)
+    t = Time(start, scale="utc") + np.linspace(0.0, span_s, 257) * u.s
+    lon = instrument.site.longitude_deg
+    lst = t.sidereal_time("apparent", longitude=lon * u.deg).to_value(u.rad)
+    expected = (lst - np.deg2rad(150.0) + np.pi) % (2 * np.pi) - np.pi
+    h = hour_angle_rad(t, 150.0, lon)
+    diff = (h - expected + np.pi) % (2 * np.pi) - np.pi
+    assert np.abs(diff).max() < 2e-9
+    # the wrap to [-pi, pi)
+    assert h.min() >= -np.pi and h.max() < np.pi
