@@ -106,6 +106,38 @@ def _check_frames(path, frames, rows):
             raise BadInput(path, f"science frame {first + dead[0]} is {what}")
 
 
+@lru_cache(maxsize=256)
+def _layout_of(path: str, size: int, mtime_ns: int) -> dict:
+    """Headers and data locations of every HDU of ``path``; checks the file is complete.
+    Kept per process by path, size and modification time: the units of one night open
+    the same exposures again (parsing the headers costs ~50 ms a file). The headers are
+    shared, so they are read-only."""
+    layout = {}
+    try:
+        with warnings.catch_warnings():   # truncation is reported below as BadInput
+            warnings.simplefilter("ignore")
+            hdul = fits.open(path, memmap=True, lazy_load_hdus=False,
+                             do_not_scale_image_data=True)
+        with hdul:
+            for i, hdu in enumerate(hdul):
+                info = hdu.fileinfo()
+                name = "PRIMARY" if i == 0 else hdu.header.get("EXTNAME", f"HDU{i}")
+                cols = hdu.columns if isinstance(hdu, fits.BinTableHDU) else None
+                layout[name] = (hdu.header.copy(), info["datLoc"], info["datSpan"], cols)
+    except BadInput:
+        raise
+    except Exception as exc:  # astropy raises OSError, ValueError, TypeError...
+        raise BadInput(path, f"not a readable FITS file ({type(exc).__name__}: "
+                             f"{exc})") from None
+    if not layout:
+        raise BadInput(path, "empty FITS file")
+    end = max(loc + span for _, loc, span, _ in layout.values())
+    if end > size:
+        raise BadInput(path, f"truncated: the headers announce {end} bytes, "
+                             f"the file has {size}")
+    return layout
+
+
 class RawExposure:
     """One raw exposure, opened lazily.
 
@@ -127,7 +159,7 @@ class RawExposure:
         self._instrument = instrument
         st = self._stat()
         self._size, self._mtime_ns = st.st_size, st.st_mtime_ns
-        self._layout = self._read_layout()
+        self._layout = _layout_of(self.path, self._size, self._mtime_ns)
         self.header = self._validate(self._layout["PRIMARY"][0])
 
     # -- opening and validation -------------------------------------------------
@@ -136,33 +168,6 @@ class RawExposure:
             return os.stat(self.path)
         except OSError as exc:
             raise BadInput(self.path, f"cannot read file: {exc.strerror}") from None
-
-    def _read_layout(self):
-        """Headers and data locations of every HDU; checks the file is complete."""
-        layout = {}
-        try:
-            with warnings.catch_warnings():   # truncation is reported below as BadInput
-                warnings.simplefilter("ignore")
-                hdul = fits.open(self.path, memmap=True, lazy_load_hdus=False,
-                                 do_not_scale_image_data=True)
-            with hdul:
-                for i, hdu in enumerate(hdul):
-                    info = hdu.fileinfo()
-                    name = "PRIMARY" if i == 0 else hdu.header.get("EXTNAME", f"HDU{i}")
-                    cols = hdu.columns if isinstance(hdu, fits.BinTableHDU) else None
-                    layout[name] = (hdu.header.copy(), info["datLoc"], info["datSpan"], cols)
-        except BadInput:
-            raise
-        except Exception as exc:  # astropy raises OSError, ValueError, TypeError...
-            raise BadInput(self.path, f"not a readable FITS file ({type(exc).__name__}: "
-                                      f"{exc})") from None
-        if not layout:
-            raise BadInput(self.path, "empty FITS file")
-        end = max(loc + span for _, loc, span, _ in layout.values())
-        if end > self._size:
-            raise BadInput(self.path, f"truncated: the headers announce {end} bytes, "
-                                      f"the file has {self._size}")
-        return layout
 
     @property
     def instrument(self):
