@@ -20,34 +20,34 @@ from .numerics.phase_reference import (FLAG_CLOSURE, FLAG_FRINGE_JUMP, FLAG_GD_E
                                        reference_coherent, track_opd, window_fraction,
                                        window_mean)
 from .stage import Array
-from .store import computed_here
 
 __all__ = ["ft_estimates", "reference_exposure"]
 
 
-def _read(ext, name):
-    return ext.dask(name) if hasattr(ext, "dask") else np.asarray(ext[name])
+def _rows(ext, name, start, stop):
+    """Rows of a dataset of a product view, or of a plain mapping of arrays."""
+    if hasattr(ext, "rows"):
+        return ext.rows(name, start, stop)
+    return np.asarray(ext[name][start:stop])
 
 
-def _load(a):
-    return computed_here(a) if hasattr(a, "compute") else np.asarray(a)
+def _length(ext, name) -> int:
+    return ext.shape(name)[0] if hasattr(ext, "shape") else len(ext[name])
 
 
 def ft_estimates(ext, *, chunk: int = 8192):
     """Phase, group delay, SNR and per-telescope flux of every FT frame, reading the FT
     stream in chunks. Returns (phase, group_delay, snr (ft_frame, baseline), flux
     (ft_frame, telescope) summed over ft_wave, wave_ref)."""
-    c, v = _read(ext, "ft_coherent"), _read(ext, "ft_coherent_var")
-    fl = _read(ext, "ft_flux")
     wave = np.asarray(ext["ft_wave"], float)
-    n = c.shape[0]
+    n = _length(ext, "ft_coherent")
     if n == 0:
         raise BadInput(getattr(ext, "path", "extract product"), "no fringe-tracker frames")
     parts, flux = [], []
     for a in range(0, n, chunk):
-        cc, vv = _load(c[a:a + chunk]), _load(v[a:a + chunk])
-        parts.append(fringe_estimates(cc, wave, ft_coherent_var=vv))
-        flux.append(_load(fl[a:a + chunk]).sum(axis=-1))
+        parts.append(fringe_estimates(_rows(ext, "ft_coherent", a, a + chunk), wave,
+                                      ft_coherent_var=_rows(ext, "ft_coherent_var", a, a + chunk)))
+        flux.append(_rows(ext, "ft_flux", a, a + chunk).sum(axis=-1))
     return (np.concatenate([p.phase for p in parts]),
             np.concatenate([p.group_delay for p in parts]),
             np.concatenate([p.snr for p in parts]), np.concatenate(flux), parts[0].wave_ref)

@@ -109,7 +109,24 @@ def _encode_table(data: np.ndarray):
     return out, unicode
 
 
-def _write_dataset(group, name: str, item, pending: list):
+def _first_blocks(outputs: dict) -> dict:
+    """The first chunk (along the first axis) of every non-empty dask output, computed
+    together: outputs made by one task (the FT chain's flux, coherent flux and variance)
+    share their first block's work."""
+    names, samples = [], []
+    for name, item in outputs.items():
+        data = item.data if isinstance(item, Array) else item
+        if _is_dask(data) and data.size:
+            names.append(name)
+            samples.append(data[:data.chunks[0][0]] if data.ndim else data)
+    if not samples:
+        return {}
+    import dask
+    from dask.local import get_sync
+    return dict(zip(names, dask.compute(*samples, scheduler=get_sync)))
+
+
+def _write_dataset(group, name: str, item, pending: list, first=None):
     """Create dataset ``name``; a dask array's data is appended to ``pending`` as
     (array, dataset) for one :func:`_store_pending` of all of them."""
     arr = item if isinstance(item, Array) else Array(item, axes=tuple(
@@ -119,8 +136,9 @@ def _write_dataset(group, name: str, item, pending: list):
         chunks = tuple(max(c) if c else 1 for c in data.chunks)
         squeeze = False
         if data.size:                   # judged on the first chunk along the first axis
-            first = data[:data.chunks[0][0]] if data.ndim else data
-            squeeze = worth_compressing(computed_here(first))
+            if first is None:
+                first = computed_here(data[:data.chunks[0][0]] if data.ndim else data)
+            squeeze = worth_compressing(first)
         dset = group.create_dataset(name, shape=data.shape, dtype=data.dtype,
                                     chunks=chunks if data.size else None,
                                     compression=COMPRESSION if squeeze else None)
@@ -189,10 +207,10 @@ def write_product(path, outputs: dict, provenance: dict) -> Path:
         with h5py.File(tmp, "w") as f:
             for k, v in provenance.items():
                 f.attrs[k] = _attr_value(v)
-            pending = []
+            pending, firsts = [], _first_blocks(outputs)
             for name, item in outputs.items():
                 if isinstance(item, Array) or isinstance(item, np.ndarray) or _is_dask(item):
-                    _write_dataset(f, name, item, pending)
+                    _write_dataset(f, name, item, pending, firsts.get(name))
                 else:
                     f.attrs[name] = _attr_value(item)
             _store_pending(pending)
@@ -311,6 +329,17 @@ class ProductView:
                 out[n] = np.char.decode(data[n], "utf-8") if n in unicode else data[n]
             return out
         return data
+
+    def rows(self, name, start: int, stop: int) -> np.ndarray:
+        """Rows ``start:stop`` of a numeric dataset (its first axis), read through the
+        open file: a long series read a block at a time (cheaper than a dask array of
+        the dataset, which opens the file for every chunk it reads)."""
+        with _H5_LOCK:
+            return self._dset(name)[start:stop]
+
+    def shape(self, name) -> tuple[int, ...]:
+        with _H5_LOCK:
+            return tuple(self._dset(name).shape)
 
     def axes(self, name) -> tuple[str, ...]:
         with _H5_LOCK:
