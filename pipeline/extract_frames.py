@@ -256,7 +256,8 @@ def _ft_block(counts, dark, rn, p2vm, *, gain, period):
     var (6)."""
     rate, var = counts_to_rate(counts, dark, gain_e_per_adu=gain, read_noise_adu=rn,
                                dit_s=period, poisson="mean")
-    res = invert_combiner(rate[:, None], p2vm, variance=var[:, None], nan_policy="propagate")
+    # the variance is the block's mean one (poisson="mean"): propagated once, not per frame
+    res = invert_combiner(rate[:, None], p2vm, variance=var[:1, None], nan_policy="propagate")
     return np.concatenate([res.flux[:, 0], res.coherent[:, 0].real, res.coherent[:, 0].imag,
                            res.coherent_var[:, 0]], axis=1).astype(np.float32)
 

@@ -45,7 +45,8 @@ class CoherentFluxes:
     ----------
     flux : ndarray, shape (..., n_pol, 4, n_wave), float64, unit of the intensities
         Photometric flux F_i of each telescope.
-    flux_var : ndarray, same shape, variance of ``flux``
+    flux_var : ndarray, same shape, variance of ``flux`` (``flux_var`` and ``coherent_var``
+        are read-only views: broadcasts when the variance given was shared by frames)
     coherent : ndarray, shape (..., n_pol, 6, n_wave), complex128
         Coherent flux C_ij = sqrt(F_i F_j) V_ij, baselines in DEVELOPERS.md order.
     coherent_var : ndarray, shape (..., n_pol, 6, n_wave), float64
@@ -99,16 +100,18 @@ def counts_to_rate(counts_adu, dark_adu, *, gain_e_per_adu: float, read_noise_ad
     -------
     rate : ndarray, float64, e-/s
     rate_var : ndarray, float64, (e-/s)^2; Poisson variance of the detected
-        electrons (negative signal clipped to zero) plus read noise.
+        electrons (negative signal clipped to zero) plus read noise. With
+        ``poisson="mean"`` it is the same for every frame: a read-only view broadcasting
+        its first frame (``rate_var[:1]``) over the first axis.
     """
     if gain_e_per_adu <= 0 or dit_s <= 0:
         raise ValueError(f"gain ({gain_e_per_adu}) and dit_s ({dit_s}) must be positive")
     if poisson not in ("frame", "mean"):
         raise ValueError(f"poisson must be 'frame' or 'mean', found {poisson!r}")
     e = (np.asarray(counts_adu, float) - np.asarray(dark_adu, float)) * gain_e_per_adu
-    signal = e if poisson == "frame" else np.broadcast_to(e.mean(axis=0), e.shape)
+    signal = e if poisson == "frame" else e.mean(axis=0, keepdims=True)
     var_e = np.maximum(signal, 0.0) + (np.asarray(read_noise_adu, float) * gain_e_per_adu) ** 2
-    return e / dit_s, var_e / dit_s ** 2
+    return e / dit_s, np.broadcast_to(var_e / dit_s ** 2, e.shape)
 
 
 def invert_combiner(intensity, p2vm, *, variance=None,
@@ -122,8 +125,10 @@ def invert_combiner(intensity, p2vm, *, variance=None,
         of ``p2vm``; leading axes (frames) are broadcast.
     p2vm : array_like, shape (n_pol, n_wave, 16, n_output), float
         Pseudo-inverse of the visibility-to-pixel matrix (combiner product).
-    variance : array_like, same shape as ``intensity``, optional
-        Variance of each intensity; without it the variances returned are NaN.
+    variance : array_like, broadcastable to ``intensity``'s shape, optional
+        Variance of each intensity; without it the variances returned are NaN. A
+        variance shared by all frames (shape (1, ..., n_pol, n_output, n_wave)) is
+        propagated once and broadcast.
     nan_policy : "raise" or "propagate"
 
     Returns
@@ -148,19 +153,25 @@ def invert_combiner(intensity, p2vm, *, variance=None,
         raise ValueError(f"{int((~np.isfinite(i)).sum())} non-finite intensities; mask them "
                          "upstream or pass nan_policy='propagate'")
     unknown = _apply(p, i)
+    t, b = N_TELESCOPE, N_BASELINE
     if variance is None:
         var = np.full_like(unknown, np.nan)
     else:
         v = np.asarray(variance, float)
-        if v.shape != i.shape:
-            raise ValueError(f"variance shape {v.shape} differs from intensity {i.shape}")
+        try:
+            if np.broadcast_shapes(v.shape, i.shape) != i.shape:
+                raise ValueError
+        except ValueError:
+            raise ValueError(f"variance shape {v.shape} does not broadcast to the intensity's "
+                             f"{i.shape}") from None
         var = _apply(p ** 2, v)
-    t, b = N_TELESCOPE, N_BASELINE
+    lead = unknown.shape[:-2]
     return CoherentFluxes(
         flux=unknown[..., :t, :],
-        flux_var=var[..., :t, :],
+        flux_var=np.broadcast_to(var[..., :t, :], lead + (t, n_wave)),
         coherent=unknown[..., t:t + b, :] + 1j * unknown[..., t + b:, :],
-        coherent_var=0.5 * (var[..., t:t + b, :] + var[..., t + b:, :]))
+        coherent_var=np.broadcast_to(0.5 * (var[..., t:t + b, :] + var[..., t + b:, :]),
+                                     lead + (b, n_wave)))
 
 
 def _apply(matrix, x):
