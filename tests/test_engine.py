@@ -5,6 +5,7 @@ recovery from a killed run."""
 import dataclasses
 import json
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -46,6 +47,13 @@ def test_second_reduce_runs_nothing(night, tmp_path):
     assert set(_states(work).values()) == {"current"}
     runs = (work / LOG_FILE).read_text().split(" INFO reduce ")
     assert len(runs) == 3 and "computed dark/sci-low-joint-dit1 " in runs[1]
+    # every unit's line gives its wall and CPU seconds; one thread's CPU time cannot
+    # exceed its wall time (BLAS threads are 1 in the units); reading and stacking the
+    # dark frames does use some
+    times = re.findall(r"computed (\S+) \S+ in ([\d.]+) s \(([\d.]+) CPU s\)", runs[1])
+    assert len(times) == len(ALL)
+    assert all(0 <= float(cpu) <= float(wall) + 0.02 for _, wall, cpu in times)
+    assert sum(float(cpu) for name, _, cpu in times if name.startswith("dark/")) > 0
     log = runs[-1]                                               # the second run's lines
     assert "computed" not in log.replace("0 product(s) computed", "") and log.count("reuse ") == 6
 
