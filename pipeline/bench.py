@@ -496,12 +496,22 @@ def main(argv=None) -> int:
             results[f"{prefix}_ratio"] = res["seconds"] / save()["reduce_s"]
             save()
     if "scaling" in parts:
+        import dask
         from distributed import LocalCluster
         times = {}
+        # Workers as docs/cli.md says to start them: without dask's MALLOC_TRIM_THRESHOLD_,
+        # which doubles the reduction's CPU (and which the nanny would also write into this
+        # process's environment, for the later parts' reduces to inherit).
+        # TWINFIELD_BENCH_DASK_MALLOC_TRIM=default keeps dask's setting.
+        keep = os.environ.get("TWINFIELD_BENCH_DASK_MALLOC_TRIM") == "default"
+        trim = "distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_"
+        unset = {} if keep else {trim: None}
+        results["dist_malloc_trim"] = "dask default" if keep else "unset"
         for n in (1, 2):
             print(f"reduce on a LocalCluster of {n} worker(s) ...")
-            with LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                              dashboard_address=None) as cluster:
+            with dask.config.set(unset), LocalCluster(n_workers=n, threads_per_worker=1,
+                                                      processes=True,
+                                                      dashboard_address=None) as cluster:
                 res = _check(run_child({"what": "reduce", "night": str(night),
                                         "work": str(_fresh(work_root / f"dist{n}")),
                                         "scheduler": cluster.scheduler_address},

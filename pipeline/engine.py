@@ -531,6 +531,7 @@ def _compute_distributed(jobs: list, done: dict, address: str, progress: bool,
     heapq.heapify(ready)
     results, running, run = {}, {}, uuid.uuid4().hex     # keys unique to this run
     with Client(address) as client:
+        _warn_malloc_trim(client)
         while ready or running:
             slots = max(1, sum(client.nthreads().values()))
             while ready and len(running) < slots:
@@ -560,6 +561,29 @@ def _compute_distributed(jobs: list, done: dict, address: str, progress: bool,
     if progress:
         print(file=sys.stderr)
     return results
+
+
+def _malloc_trim_threshold():
+    return os.environ.get("MALLOC_TRIM_THRESHOLD_")
+
+
+def _warn_malloc_trim(client) -> None:
+    """Warn when the workers run with ``MALLOC_TRIM_THRESHOLD_`` set, as dask's nanny sets
+    it by default (``distributed.nanny.pre-spawn-environ``). Any explicit value turns off
+    glibc's adaptive mmap threshold: every array above 128 kB is then mapped afresh and
+    its pages faulted in again, which about doubles this reduction's CPU time (measured
+    in docs/benchmarks.md)."""
+    try:
+        values = client.run(_malloc_trim_threshold)
+    except Exception:                   # an old or unusual cluster: nothing to say
+        return
+    set_on = sorted(w for w, v in values.items() if v is not None)
+    if set_on:
+        log.warning("%d of %d workers run with MALLOC_TRIM_THRESHOLD_=%s (dask's default), "
+                    "which about doubles the reduction's CPU time; start them with it unset "
+                    "(dask configuration distributed.nanny.pre-spawn-environ."
+                    "MALLOC_TRIM_THRESHOLD_: null, see docs/cli.md)",
+                    len(set_on), len(values), values[set_on[0]])
 
 
 def reduce(night_dir, workdir, *, config=None, scheduler="threads", workers=None,

@@ -7,6 +7,18 @@ import pytest
 from pipeline.instrument import load_instrument
 
 
+@pytest.fixture(autouse=True)
+def _no_malloc_trim_leak():
+    """A dask nanny writes its workers' MALLOC_TRIM_THRESHOLD_ into the environment of the
+    process that starts it (this one, for a LocalCluster); helper processes started by
+    later tests would inherit it and run at about half speed. Undo that after each test."""
+    import os
+    before = os.environ.get("MALLOC_TRIM_THRESHOLD_")
+    yield
+    if before is None:
+        os.environ.pop("MALLOC_TRIM_THRESHOLD_", None)
+
+
 @pytest.fixture
 def rng():
     """A seeded generator; every test that draws noise uses it."""

@@ -324,7 +324,10 @@ def test_missing_upstream_names_the_missing_calibration(night, tmp_path, rng):
 
 
 def test_distributed_scheduler_by_address(night, tmp_path):
-    """An existing dask.distributed cluster, reached by its tcp:// address."""
+    """An existing dask.distributed cluster, reached by its tcp:// address. Its workers
+    started with dask's default MALLOC_TRIM_THRESHOLD_ make the log say so (it doubles
+    the CPU time); with the variable unset in the dask configuration, it says nothing."""
+    import dask
     from distributed import LocalCluster
     with LocalCluster(n_workers=1, threads_per_worker=2, processes=True,
                       dashboard_address=None) as cluster:
@@ -332,6 +335,16 @@ def test_distributed_scheduler_by_address(night, tmp_path):
         run = reduce(night, tmp_path / "work", stages=[inventory.STAGE, dark.STAGE],
                      scheduler=cluster.scheduler_address, progress=False)
     assert run.exit_code == 0 and len(run.computed) == 4
+    assert "1 of 1 workers run with MALLOC_TRIM_THRESHOLD_=" in \
+        (tmp_path / "work" / LOG_FILE).read_text()
+    os.environ.pop("MALLOC_TRIM_THRESHOLD_", None)      # the first nanny set it here too
+    unset = {"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}
+    with dask.config.set(unset), LocalCluster(n_workers=1, threads_per_worker=1,
+                                              processes=True, dashboard_address=None) as cluster:
+        run = reduce(night, tmp_path / "work2", stages=[inventory.STAGE, dark.STAGE],
+                     scheduler=cluster.scheduler_address, progress=False)
+    assert run.exit_code == 0
+    assert "MALLOC_TRIM_THRESHOLD_" not in (tmp_path / "work2" / LOG_FILE).read_text()
 
 
 def test_distributed_lost_worker_fails_its_unit_only(night, tmp_path):
