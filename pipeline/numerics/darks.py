@@ -255,8 +255,8 @@ def bad_pixel_masks(master: np.ndarray, noise: np.ndarray, n_pair: np.ndarray, *
     low = np.minimum(quiet_factor, np.sqrt(chi2.ppf(false_alarm, k_values) / k_values))
     # Integer ADU: with few pairs, identical frames (noise exactly 0) happen by chance.
     low = np.where(k_values >= _MIN_PAIRS_QUIET, low, 0.0)[k_index].reshape(k.shape)
-    high = np.maximum(noisy_factor,
-                      np.sqrt(chi2.isf(false_alarm, k_values) / k_values))[k_index].reshape(k.shape)
+    high = np.maximum(noisy_factor, np.sqrt(chi2.isf(false_alarm, k_values) / k_values))
+    high = high[k_index].reshape(k.shape)
     with np.errstate(invalid="ignore"):
         hot = finite & (dark_rate > hot_rate) & (master - level > hot_sigma * spread)
         dead = finite & ((master < level - low_level) | (noise < low * typical_noise))
