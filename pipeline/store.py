@@ -112,7 +112,8 @@ def _encode_table(data: np.ndarray):
 def _first_blocks(outputs: dict) -> dict:
     """The first chunk (along the first axis) of every non-empty dask output, computed
     together: outputs made by one task (the FT chain's flux, coherent flux and variance)
-    share their first block's work."""
+    share their first block's work, which :func:`_write_dataset` then writes, so it is
+    not computed again with the rest."""
     names, samples = [], []
     for name, item in outputs.items():
         data = item.data if isinstance(item, Array) else item
@@ -127,22 +128,26 @@ def _first_blocks(outputs: dict) -> dict:
 
 
 def _write_dataset(group, name: str, item, pending: list, first=None):
-    """Create dataset ``name``; a dask array's data is appended to ``pending`` as
-    (array, dataset) for one :func:`_store_pending` of all of them."""
+    """Create dataset ``name``. A dask array's first block along its first axis
+    (``first``, from :func:`_first_blocks`; None when it is empty) decides its compression
+    and is written at once; the rest is appended to ``pending`` as (array, dataset, region)
+    for one :func:`_store_pending` of all of them."""
     arr = item if isinstance(item, Array) else Array(item, axes=tuple(
         f"dim_{i}" for i in range(np.ndim(item))))
     data = arr.data
     if _is_dask(data):
         chunks = tuple(max(c) if c else 1 for c in data.chunks)
-        squeeze = False
-        if data.size:                   # judged on the first chunk along the first axis
-            if first is None:
-                first = computed_here(data[:data.chunks[0][0]] if data.ndim else data)
-            squeeze = worth_compressing(first)
+        squeeze = first is not None and worth_compressing(first)
         dset = group.create_dataset(name, shape=data.shape, dtype=data.dtype,
                                     chunks=chunks if data.size else None,
                                     compression=COMPRESSION if squeeze else None)
-        pending.append((data, dset))
+        if first is not None and data.ndim == 0:
+            dset[()] = first
+        elif first is not None:
+            n0 = len(first)
+            dset[:n0] = first
+            if n0 < data.shape[0]:
+                pending.append((data[n0:], dset, (slice(n0, None),)))
     else:
         data = np.asarray(data)
         unicode = []
@@ -177,8 +182,8 @@ def _store_pending(pending):
     if pending:
         import dask.array as da
         from dask.local import get_sync
-        da.store([d for d, _ in pending], [t for _, t in pending], lock=threading.Lock(),
-                 scheduler=get_sync)
+        da.store([d for d, _, _ in pending], [t for _, t, _ in pending],
+                 regions=[r for _, _, r in pending], lock=threading.Lock(), scheduler=get_sync)
 
 
 def _attr_value(value):

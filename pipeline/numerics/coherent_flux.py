@@ -159,11 +159,12 @@ def invert_combiner(intensity, p2vm, *, variance=None,
     else:
         v = np.asarray(variance, float)
         try:
-            if np.broadcast_shapes(v.shape, i.shape) != i.shape:
-                raise ValueError
+            fits = np.broadcast_shapes(v.shape, i.shape) == i.shape
         except ValueError:
+            fits = False
+        if not fits:
             raise ValueError(f"variance shape {v.shape} does not broadcast to the intensity's "
-                             f"{i.shape}") from None
+                             f"{i.shape}")
         var = _apply(p ** 2, v)
     lead = unknown.shape[:-2]
     return CoherentFluxes(
