@@ -345,12 +345,15 @@ class FixedWeightExtractor:
     valid: np.ndarray
 
     def __post_init__(self):
-        # what every chunk of frames uses, made once: the operator with zeros for NaN,
-        # its square (variance propagation), and the pixels near a trace (x, y)
-        op = np.nan_to_num(self.operator)
-        object.__setattr__(self, "_filled", op)
-        object.__setattr__(self, "_squared", op ** 2)
-        object.__setattr__(self, "_near", (self.profiles.max(axis=1) > 1e-3) & self.valid.T)
+        # what every chunk of frames uses, made once: the operator with zeros for NaN and
+        # its square (variance propagation), both (x, y, trace) contiguous for the
+        # batched products; the usable pixels and those near a trace, (x, 1, y)
+        op = np.ascontiguousarray(np.nan_to_num(self.operator).transpose(0, 2, 1))
+        object.__setattr__(self, "_filled_t", op)
+        object.__setattr__(self, "_squared_t", op ** 2)
+        object.__setattr__(self, "_valid_t", self.valid.T[:, None, :])
+        object.__setattr__(self, "_near", ((self.profiles.max(axis=1) > 1e-3)
+                                           & self.valid.T)[:, None, :])
 
 
 def fixed_weight_extractor(profiles, variance, *, valid=None,
@@ -418,18 +421,18 @@ def apply_fixed_weights(extractor: FixedWeightExtractor, frames, *, read_noise,
     suspect : ndarray (frame,), bool
     """
     d = np.asarray(frames, float)
-    ok = extractor.valid
-    dx = np.where(ok, d, 0.0).transpose(2, 0, 1)                          # (x, frame, y)
-    op = extractor._filled
-    flux = dx @ op.transpose(0, 2, 1)                                     # (x, frame, trace)
+    dx = np.where(extractor._valid_t, d.transpose(2, 0, 1), 0.0)         # (x, frame, y)
+    flux = dx @ extractor._filled_t                                       # (x, frame, trace)
     model = flux @ extractor.profiles                                     # (x, frame, y)
-    rn2 = np.broadcast_to(np.asarray(read_noise, float) ** 2, ok.shape).T  # (x, y)
-    vmod = rn2[:, None, :] + np.maximum(model, 0.0)
-    var = vmod @ extractor._squared.transpose(0, 2, 1)                    # (x, frame, trace)
-    z2 = (dx - model) ** 2
-    z2 /= vmod
-    z2 *= extractor._near[:, None, :]
-    suspect = (z2 > clip ** 2).any(axis=(0, 2))
+    rn2 = np.broadcast_to(np.asarray(read_noise, float) ** 2, extractor.valid.shape).T
+    vmod = np.maximum(model, 0.0)
+    vmod += rn2[:, None, :]                                               # (x, frame, y)
+    var = vmod @ extractor._squared_t                                     # (x, frame, trace)
+    # outliers: (d - m)^2 > clip^2 V, in place on the frames' copy (no division)
+    dx -= model
+    dx *= dx
+    vmod *= clip ** 2
+    suspect = ((dx > vmod) & extractor._near).any(axis=(0, 2))
     bad = ~extractor.covered.T[:, None, :]                                # (x, 1, trace)
     flux = np.where(bad, np.nan, flux).transpose(1, 2, 0)
     var = np.where(bad, np.nan, var).transpose(1, 2, 0)

@@ -292,8 +292,9 @@ def _gauss_newton(y, o, span, sig, dch, oc, use, n_iter=8, tol=1e-6):
     oscale = np.maximum(np.abs(o).max(0), 1e-30)
     sig, dch, oc = sig.copy(), np.abs(dch).copy(), oc.copy()
     k4 = np.pi ** 2 / _FOUR_LN2
-    # pixel-major (pix, sample) copies: every sum over samples is then one batched matrix
-    # product on contiguous rows, and the Jacobian (pix, sample, 7) is filled in place
+    # pixel-major (pix, sample) copies, and the Jacobian parameter-major (pix, 7, sample):
+    # every column is a contiguous row, written in place, and every sum over samples is
+    # one batched matrix product
     yt, ot = np.ascontiguousarray(y.T), np.ascontiguousarray(o.T)
     wt = None if np.all(use == 1) else np.ascontiguousarray(use.T)
     st = None if span is None else np.ascontiguousarray(span.T)
@@ -309,33 +310,49 @@ def _gauss_newton(y, o, span, sig, dch, oc, use, n_iter=8, tol=1e-6):
             yh, oh = yt[held], ot[held]
             wh = None if wt is None else wt[held]
             sh = None if st is None else st[held]
-            jac = np.empty((held.size, n_s, 7))
-            jac[..., 0] = 1.0
-            jac[..., 1] = oh / oscale[held, None]
-            lin_b = jac[..., :4]
+            two_pi_o = (2 * np.pi) * oh
+            jac = np.empty((held.size, 7, n_s))
+            jac[:, 0] = 1.0
+            jac[:, 1] = oh / oscale[held, None]
+            lin_b = jac[:, :4]
+            jac_w = jac if wh is None else np.empty_like(jac)
+            if wh is not None:
+                jac_w[:, :2] = jac[:, :2] * wh[:, None]
+            lin_w = jac_w[:, :4]
         rows = np.searchsorted(held, act)
-        sg, dc, xo = sig[held, None], dch[held, None], oh - oc[held, None]
-        env = np.exp(-k4 * (dc * xo) ** 2)
+        sg, dc = sig[held, None], dch[held, None]
+        xo = oh - oc[held, None]
+        env = dc * xo
+        env *= env
+        env *= -k4
+        np.exp(env, out=env)
         if sh is not None:
             env *= sinc(sg * sh)
-        c, s = cos_sin((2 * np.pi) * sg * oh)
-        np.multiply(env, c, out=jac[..., 2])
-        np.multiply(env, s, out=jac[..., 3])
-        lin_w = lin_b if wh is None else lin_b * wh[..., None]
-        m = lin_w.transpose(0, 2, 1) @ lin_b                               # (pix, 4, 4)
-        rhs = lin_w.transpose(0, 2, 1) @ yh[..., None]
+        c, s = cos_sin(sg * two_pi_o)
+        np.multiply(env, c, out=jac[:, 2])                     # env cos, env sin
+        np.multiply(env, s, out=jac[:, 3])
+        if wh is not None:
+            np.multiply(jac[:, 2:4], wh[:, None], out=jac_w[:, 2:4])
+        m = lin_w @ lin_b.transpose(0, 2, 1)                               # (pix, 4, 4)
+        rhs = lin_w @ yh[..., None]
         lh = np.linalg.solve(m + 1e-12 * np.eye(4) * np.trace(m, axis1=1, axis2=2)[:, None, None],
                              rhs)[..., 0]
-        fr = lh[:, 2:3] * c + lh[:, 3:4] * s
-        dfr = -lh[:, 2:3] * s + lh[:, 3:4] * c
-        np.multiply(env * dfr, (2 * np.pi) * oh, out=jac[..., 4])
-        np.multiply(env * fr, (-2 * k4) * dc * xo ** 2, out=jac[..., 5])
-        np.multiply(env * fr, (2 * k4) * dc ** 2 * xo, out=jac[..., 6])
-        res = yh - (lin_b @ lh[..., None])[..., 0]
+        a2, a3 = lh[:, 2:3], lh[:, 3:4]
+        efr = a2 * jac[:, 2]                                   # env fr, env dfr
+        efr += a3 * jac[:, 3]
+        edfr = a3 * jac[:, 2]
+        edfr -= a2 * jac[:, 3]
+        np.multiply(edfr, two_pi_o, out=jac[:, 4])
+        efr *= xo                                              # env fr xo 2 k4 dc
+        efr *= (2 * k4) * dc
+        np.multiply(efr, xo, out=jac[:, 5])
+        jac[:, 5] *= -1
+        np.multiply(efr, dc, out=jac[:, 6])
+        res = yh - (lh[:, None, :] @ lin_b)[:, 0]
         if wh is not None:
             res *= wh
-        jac_w = jac if wh is None else jac * wh[..., None]
-        jtj = jac_w.transpose(0, 2, 1) @ jac                               # (pix, 7, 7)
+            np.multiply(jac[:, 4:], wh[:, None], out=jac_w[:, 4:])
+        jtj = jac_w @ jac.transpose(0, 2, 1)                               # (pix, 7, 7)
         nh = np.sqrt(np.maximum(np.einsum("pii->pi", jtj), 1e-300))
         lin[act], norm[act] = lh[rows], nh[rows]
         jtj_n[act] = jtj[rows] / nh[rows, :, None] / nh[rows, None, :]
@@ -344,7 +361,7 @@ def _gauss_newton(y, o, span, sig, dch, oc, use, n_iter=8, tol=1e-6):
         if not going.any():
             break
         act, rows = act[going], rows[going]
-        g = (jac.transpose(0, 2, 1) @ res[..., None])[rows, :, 0] / norm[act]
+        g = (jac @ res[..., None])[rows, :, 0] / norm[act]
         step_n = np.linalg.solve(jtj_n[act] + 1e-3 * np.eye(7), g[..., None])[..., 0]
         step = step_n / norm[act]
         last[act] = ~(np.sum(g * step_n, 1) > tol * resvar[act])     # NaN: no say

@@ -30,6 +30,16 @@ def test_sinc_matches_numpy(rng):
     assert got[0] == 1.0 and got.dtype == np.float64
 
 
+def test_sinc_small_and_subnormal_arguments(rng):
+    # float32 underflows below ~1e-38 (1e-45 rounds to zero): the sine of the cast
+    # argument would give 0 or a few-percent error there instead of 1
+    x = np.array([1e-300, -1e-40, 1e-20, 1e-8, 3e-4, -3.2e-4, 0.3183])
+    np.testing.assert_allclose(sinc(x), np.sinc(x), rtol=0, atol=3e-7)
+    # arguments inside one half turn take the unreduced path; the same bound holds
+    small = rng.uniform(-0.99, 0.99, 10_000)
+    np.testing.assert_allclose(sinc(small), np.sinc(small), rtol=0, atol=3e-7)
+
+
 def test_wrap_phase_into_minus_pi_pi(rng):
     # the argument of exp(i phi) (numpy float64 reference), in (-pi, pi]; +-pi -> pi
     from pipeline.numerics.trig import wrap_phase
