@@ -120,22 +120,26 @@ def fringe_estimates(ft_coherent, ft_wave, *, ft_coherent_var,
     if bad.any():                                  # NaN policy: such pixels get zero weight
         c, var = np.where(bad, 0, c), np.where(bad, 0.0, var)
     sigma0 = sigma.mean()
-    cross = np.sum(c[..., 1:] * np.conj(c[..., :-1]), axis=-1)
+    # sums over the few FT pixels as matrix-vector products: numpy reduces a short
+    # trailing axis row by row, three to four times slower
+    ones_c, ones_f = np.ones(wave.size, np.complex64), np.ones(wave.size, np.float32)
+    cross = (c[..., 1:] * np.conj(c[..., :-1])) @ ones_c[1:]
     gd = -np.angle(cross).astype(float) / (2 * np.pi * np.mean(np.diff(sigma)))
     weight = c.real ** 2 + c.imag ** 2
     # the weighted spread of the wavenumbers does not change with the group delay
     tiny = np.finfo(np.float32).tiny
-    wsum = np.maximum(weight.sum(-1, keepdims=True), tiny)
-    ds = ((sigma - sigma0).astype(np.float32)
-          - (weight * (sigma - sigma0).astype(np.float32)).sum(-1, keepdims=True) / wsum)
+    wsum = np.maximum(weight @ ones_f, tiny)
+    dsig = (sigma - sigma0).astype(np.float32)
+    ds = dsig - ((weight @ dsig) / wsum)[..., None]
     wds = weight * ds
-    den = np.maximum((wds * ds).sum(-1), tiny).astype(float)
+    den = np.maximum((wds * ds) @ ones_f, tiny).astype(float)
     for _ in range(n_refine):
         rot = c * cis(2 * np.pi * sigma * gd[..., None], np.complex64)
-        psi = np.angle(rot * np.conj(rot.sum(-1))[..., None])
-        gd = gd - (wds * psi).sum(-1) / (2 * np.pi * den)
-    s = np.sum(c * cis(2 * np.pi * (sigma - sigma0) * gd[..., None], np.complex64), axis=-1)
-    noise = np.sqrt(np.maximum(var.sum(-1, dtype=float), np.finfo(float).tiny))
+        psi = np.angle(rot * np.conj(rot @ ones_c)[..., None])
+        psi *= wds
+        gd = gd - (psi @ ones_f) / (2 * np.pi * den)
+    s = (c * cis(2 * np.pi * (sigma - sigma0) * gd[..., None], np.complex64)) @ ones_c
+    noise = np.sqrt(np.maximum((var @ ones_f).astype(float), np.finfo(float).tiny))
     return FringeEstimates(phase=np.angle(s).astype(float), group_delay=gd,
                            snr=np.abs(s).astype(float) / noise, wave_ref=float(1.0 / sigma0))
 
