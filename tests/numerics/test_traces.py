@@ -88,6 +88,26 @@ def test_profiles_and_pixel_response(rng):
     assert np.all(r[~lit & (img < 1e-3 * img.max())] == 1.0)
 
 
+def test_profiles_on_trace_windows_equal_every_row(rng):
+    # Each column is evaluated near its trace only; elsewhere the pixel-integrated
+    # Gaussian 0.5 (erf(u+) - erf(u-)) is exactly 0 in float64, so the profiles must be
+    # bit-identical to the formula on every row: traces at and beyond the edges, widths
+    # 0.6-1.6 px, one centre far off the detector.
+    from scipy.special import erf
+    n_t, n_x, n_y = 24, 64, 200
+    centres = np.linspace(-3, n_y + 3, n_t)[:, None] + rng.normal(0, 2, (n_t, n_x))
+    sigmas = rng.uniform(0.6, 1.6, (n_t, n_x))
+    centres[3, 5] = 1e12
+    y = np.arange(n_y, dtype=float)[None, :, None]
+    c, s = centres[:, None, :], sigmas[:, None, :]
+    every_row = 0.5 * (erf((y + 0.5 - c) / s / np.sqrt(2)) - erf((y - 0.5 - c) / s / np.sqrt(2)))
+    assert np.array_equal(trace_profiles(centres, sigmas, n_y=n_y), every_row)
+    # a NaN centre takes the every-row path: NaN in its column only
+    centres[0, 0] = np.nan
+    prof = trace_profiles(centres, sigmas, n_y=n_y)
+    assert np.isnan(prof[0, :, 0]).all() and np.isfinite(prof[1:]).all()
+
+
 def test_fit_amplitudes_separates_overlapping_traces(rng):
     n_y, n_x = 40, 8
     centres = np.array([[16.0] * n_x, [20.0] * n_x])   # 4 px apart, sigma 1: split layout
