@@ -398,6 +398,11 @@ def _table(results: dict) -> str:
                       ">=": results[key] >= goal}[op]
                 verdict = f"{op} {goal:g}  {'met' if ok else 'MISSED'}"
             lines.append(f"{key:24s} {fmt.format(results[key]):>12s}  {verdict}")
+    stages = results.get("reduce_stage_seconds") or {}
+    if stages:
+        lines += ["", f"{'reduce, per stage':24s} {'units':>6s} {'CPU s':>8s} {'wall s':>8s}"]
+        for name, row in sorted(stages.items(), key=lambda kv: -kv[1]["cpu_s"]):
+            lines.append(f"{name:24s} {row['units']:6d} {row['cpu_s']:8.1f} {row['wall_s']:8.1f}")
     return "\n".join(lines)
 
 
@@ -475,6 +480,9 @@ def main(argv=None) -> int:
                        reduce_failed=res["n_failed"],
                        peak_rss_gib=max(res["tree_peak_rss_bytes"],
                                         res["self_max_rss_bytes"]) / GIB)
+        # where the reduce's CPU went: its units' own lines in the work directory's log
+        from .engine import LOG_FILE, unit_seconds
+        results["reduce_stage_seconds"] = unit_seconds((full / LOG_FILE).read_text())
         save()
         print(f"  {results['reduce_s']:.1f} s; I/O floor ...")
         io = io_floor(night, full, scratch=work_root / "io-scratch")

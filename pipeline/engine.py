@@ -20,6 +20,7 @@ import hashlib
 import json
 import logging
 import os
+import re
 import socket
 import sys
 import time
@@ -456,6 +457,22 @@ def _log_result(res: dict, debug: bool) -> None:
         log.info("computed %s/%s %s in %.2f s (%.2f CPU s)%s", res["stage"], res["label"],
                  res["key"], res["seconds"], res.get("cpu_seconds", float("nan")),
                  f" (skipped: {res['message']})" if res["message"] else "")
+
+
+_UNIT_LINE = re.compile(r"computed (?P<stage>[^/\s]+)/\S+ \S+ in (?P<wall>[\d.]+) s "
+                        r"\((?P<cpu>[\d.na]+) CPU s\)")
+
+
+def unit_seconds(log_text: str) -> dict:
+    """Per stage, the units computed and their summed wall and CPU seconds, from the unit
+    lines of a log (:func:`_log_result`): {stage: {"units", "wall_s", "cpu_s"}}."""
+    out: dict = {}
+    for m in _UNIT_LINE.finditer(log_text):
+        row = out.setdefault(m["stage"], {"units": 0, "wall_s": 0.0, "cpu_s": 0.0})
+        row["units"] += 1
+        row["wall_s"] += float(m["wall"])
+        row["cpu_s"] += float(m["cpu"])
+    return out
 
 
 def _is_result(x) -> bool:

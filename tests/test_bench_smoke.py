@@ -75,8 +75,14 @@ def test_child_answers_and_table(tmp_path):
                            "kw": {"ft_frames": 16, "sc_frames": 1, "min_s": 0.0,
                                   "binary_repeat": 1, "binary_radius_mas": 2.0}})
     assert res["returncode"] == 0 and res["tree_peak_rss_bytes"] > 0
-    text = bench._table({**res, "io_floor_ratio": 2.0, "cores": 2})
+    text = bench._table({**res, "io_floor_ratio": 2.0, "cores": 2,
+                         "reduce_stage_seconds": {"wavecal": {"units": 3, "cpu_s": 22.0,
+                                                              "wall_s": 23.9},
+                                                  "binary": {"units": 25, "cpu_s": 23.9,
+                                                             "wall_s": 24.2}}})
     assert "io_floor_ratio" in text and "met" in text
+    # the stages by CPU, largest first
+    assert text.index("binary") < text.index("wavecal") and "   23.9     24.2" in text
 
 
 def test_change_param_moves_a_binary_parameter_to_a_new_value(tmp_path):

@@ -16,7 +16,8 @@ import numpy as np
 import pytest
 
 from fake_stages import APART_CRASHER, CONSUMER, CRASHER, SLOW, WHERE
-from pipeline.engine import (LOCK_FILE, LOG_FILE, Locked, build_plan, reduce, rerun, status)
+from pipeline.engine import (LOCK_FILE, LOG_FILE, Locked, build_plan, reduce, rerun, status,
+                             unit_seconds)
 from pipeline.errors import ConfigError
 from pipeline.store import ProductView, is_complete
 from rawfactory import small_night, write_raw
@@ -54,6 +55,11 @@ def test_second_reduce_runs_nothing(night, tmp_path):
     assert len(times) == len(ALL)
     assert all(0 <= float(cpu) <= float(wall) + 0.02 for _, wall, cpu in times)
     assert sum(float(cpu) for name, _, cpu in times if name.startswith("dark/")) > 0
+    # the per-stage sums the bench reports add up the same lines
+    per_stage = unit_seconds(runs[1])
+    assert sum(r["units"] for r in per_stage.values()) == len(ALL)
+    assert per_stage["dark"]["cpu_s"] == pytest.approx(
+        sum(float(cpu) for name, _, cpu in times if name.startswith("dark/")))
     log = runs[-1]                                               # the second run's lines
     assert "computed" not in log.replace("0 product(s) computed", "") and log.count("reuse ") == 6
 
