@@ -352,7 +352,12 @@ def _gauss_newton(y, o, span, sig, dch, oc, use, n_iter=8, tol=1e-6):
         if wh is not None:
             res *= wh
             np.multiply(jac[:, 4:], wh[:, None], out=jac_w[:, 4:])
-        jtj = jac_w @ jac.transpose(0, 2, 1)                               # (pix, 7, 7)
+        # J^T W J from its blocks: the linear columns' block is m; the rest is the three
+        # nonlinear rows against all seven (the matrix is symmetric)
+        jtj = np.empty((held.size, 7, 7))
+        jtj[:, :4, :4] = m
+        jtj[:, 4:] = jac_w[:, 4:] @ jac.transpose(0, 2, 1)
+        jtj[:, :4, 4:] = jtj[:, 4:, :4].transpose(0, 2, 1)
         nh = np.sqrt(np.maximum(np.einsum("pii->pi", jtj), 1e-300))
         lin[act], norm[act] = lh[rows], nh[rows]
         jtj_n[act] = jtj[rows] / nh[rows, :, None] / nh[rows, None, :]
@@ -361,7 +366,12 @@ def _gauss_newton(y, o, span, sig, dch, oc, use, n_iter=8, tol=1e-6):
         if not going.any():
             break
         act, rows = act[going], rows[going]
-        g = (jac @ res[..., None])[rows, :, 0] / norm[act]
+        # gradient J^T W r: for the linear columns it is rhs - m lh (zero but for the
+        # regularisation of their solve), for the nonlinear ones one product
+        g = np.empty((held.size, 7))
+        g[:, :4] = rhs[..., 0] - (m @ lh[..., None])[..., 0]
+        g[:, 4:] = (jac[:, 4:] @ res[..., None])[..., 0]
+        g = g[rows] / norm[act]
         step_n = np.linalg.solve(jtj_n[act] + 1e-3 * np.eye(7), g[..., None])[..., 0]
         step = step_n / norm[act]
         last[act] = ~(np.sum(g * step_n, 1) > tol * resvar[act])     # NaN: no say
