@@ -421,7 +421,10 @@ def apply_fixed_weights(extractor: FixedWeightExtractor, frames, *, read_noise,
     suspect : ndarray (frame,), bool
     """
     d = np.asarray(frames, float)
-    dx = np.where(extractor._valid_t, d.transpose(2, 0, 1), 0.0)         # (x, frame, y)
+    # (x, frame, y) in C order: np.where would keep the frames' memory order, and every
+    # later operation mixing it with the C-ordered model would stride through memory
+    dx = np.array(d.transpose(2, 0, 1), order="C")
+    np.copyto(dx, 0.0, where=~extractor._valid_t)
     flux = dx @ extractor._filled_t                                       # (x, frame, trace)
     model = flux @ extractor.profiles                                     # (x, frame, y)
     rn2 = np.broadcast_to(np.asarray(read_noise, float) ** 2, extractor.valid.shape).T
