@@ -184,6 +184,10 @@ def _fit_windowed(d, ok, rn2, prof, rows, *, clip, n_iter, min_coverage):
     near = {k: on_rows(k) for k in (-2, -1, 0, 1, 2)}
     pw = near[0]
     stack = np.stack([near[k] for k in (-2, -1, 0, 1, 2)], axis=-1)     # (x, t, H, 5)
+    # the normal equations' profile products (offsets 0, 1, 2) and the profile, (x, t, 4, H):
+    # each iteration's four weighted sums over a window are one batched product
+    prods = np.stack([pw * near[s] for s in (0, 1, 2)] + [pw], axis=2)
+    pw_row = pw[:, :, None, :]                                          # (x, t, 1, H)
     dt = d.transpose(2, 1, 0)                                           # (x, y, frame)
     dw = dt[xi, yx]                                                     # (x, trace, H, frame)
     rn2w = rn2.T[xi, yx][..., None]
@@ -193,9 +197,10 @@ def _fit_windowed(d, ok, rn2, prof, rows, *, clip, n_iter, min_coverage):
     n_rej = np.zeros(n_f, int)
     for it in range(n_iter):
         w = np.where(okw, 1.0 / varw, 0.0)
-        sums = [np.einsum("xth,xthf->xtf", pw * near[s], w) for s in (0, 1, 2)]
-        cover = np.einsum("xth,xthf->xtf", pw, okw.astype(float))
-        flux, ivar_diag, good = _solve_covered(sums, np.einsum("xth,xthf->xtf", pw, dw * w),
+        s4 = prods @ w                                                  # (x, t, 4, frame)
+        cover = (pw_row @ okw.astype(float))[:, :, 0]
+        rhs = (pw_row @ (dw * w))[:, :, 0]
+        flux, ivar_diag, good = _solve_covered([s4[:, :, 0], s4[:, :, 1], s4[:, :, 2]], rhs,
                                                cover, min_coverage)
         fx = np.pad(flux.transpose(2, 1, 0), ((0, 0), (2, 2), (0, 0)))  # (x, trace+4, frame)
         nb = np.stack([fx[:, 2 + k:2 + k + n_t] for k in (-2, -1, 0, 1, 2)], axis=2)
@@ -203,7 +208,10 @@ def _fit_windowed(d, ok, rn2, prof, rows, *, clip, n_iter, min_coverage):
         varw = rn2w + np.maximum(model, 0.0)
         if it < n_iter - 1:
             # Horne's rule: reject at most the worst pixel per column and iteration
-            z2 = np.where(okw, (dw - model) ** 2 / varw, 0.0)
+            z2 = dw - model
+            z2 *= z2
+            z2 /= varw
+            np.copyto(z2, 0.0, where=~okw)
             flat = z2.reshape(n_x, -1, n_f)
             worst = np.argmax(flat, axis=1)                             # (x, frame)
             zmax = np.take_along_axis(flat, worst[:, None], 1)[:, 0]
