@@ -51,9 +51,7 @@ def cis(phase, dtype=complex):
 def sinc(x):
     """sin(pi x) / (pi x), 1 at x = 0 (``numpy.sinc``), to within 3e-7 absolute."""
     y = np.multiply(x, np.pi, dtype=float)
-    # within [-pi, pi] the reduction would return y itself (smearing arguments are small)
-    small = y.size > 0 and np.abs(y).max() <= np.pi
-    s = np.sin(y.astype(np.float32) if small else _reduced32(y)).astype(float)
+    s = np.sin(_reduced32(y)).astype(float)
     with np.errstate(divide="ignore", invalid="ignore"):
         s /= y
     # near zero the float32 sine loses the argument (1e-40 is subnormal, 1e-300 zero):

@@ -35,7 +35,7 @@ def test_sinc_small_and_subnormal_arguments(rng):
     # argument would give 0 or a few-percent error there instead of 1
     x = np.array([1e-300, -1e-40, 1e-20, 1e-8, 3e-4, -3.2e-4, 0.3183])
     np.testing.assert_allclose(sinc(x), np.sinc(x), rtol=0, atol=3e-7)
-    # arguments inside one half turn take the unreduced path; the same bound holds
+    # and the same bound within one half turn, where the smearing arguments lie
     small = rng.uniform(-0.99, 0.99, 10_000)
     np.testing.assert_allclose(sinc(small), np.sinc(small), rtol=0, atol=3e-7)
 
