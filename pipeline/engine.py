@@ -286,8 +286,8 @@ class _Helpers:
     scheduler.
 
     A pure-Python loop (an lmfit refinement) or a matplotlib drawing holds the GIL for
-    most of its time; on a thread it stalls every other unit's Python between its numpy
-    calls. Such a unit is sent whole (:func:`_execute`: read inputs, run, write the
+    most of its time, and a numpy-heavy unit between its numpy calls; on a thread each
+    stalls the others. Such a unit is sent whole (:func:`_execute`: read inputs, run, write the
     product) to one of ``n`` spawned processes, made on first use; its thread waits
     without holding the GIL. Where no process can be made (in a daemonic process, a dask
     worker's) units run on their thread.
@@ -315,7 +315,8 @@ class _Helpers:
                     self.pool = None                # the next units get a new pool
         log.warning("a helper process died running %s/%s or a unit beside it; running it "
                     "again alone", spec["stage"], spec["unit"].label)
-        with ProcessPoolExecutor(1, mp_context=_spawn()) as alone:
+        with ProcessPoolExecutor(1, mp_context=_spawn(), initializer=_die_with_parent,
+                                 initargs=(os.getpid(),)) as alone:
             try:
                 return alone.submit(_execute, spec, upstream).result()
             except BrokenProcessPool as exc:
@@ -333,7 +334,9 @@ class _Helpers:
                     log.info("helper processes not used: the main script has no "
                              "'if __name__ == \"__main__\":' guard")
                 else:
-                    self.pool = ProcessPoolExecutor(self.n, mp_context=_spawn())
+                    self.pool = ProcessPoolExecutor(self.n, mp_context=_spawn(),
+                                                    initializer=_die_with_parent,
+                                                    initargs=(os.getpid(),))
             return self.pool
 
     def close(self) -> None:
@@ -359,6 +362,30 @@ def _main_is_importable() -> bool:
         return "__main__" in Path(path).read_text(errors="ignore")
     except OSError:
         return False
+
+
+def _die_with_parent(parent_pid: int) -> None:
+    """In a helper process: end it as soon as the reducing process ``parent_pid`` is gone
+    (killed, say), so that no orphaned helper goes on computing and writing into the work
+    directory beside the run that takes it over. Linux: the kernel sends SIGKILL at the
+    parent's death (prctl PR_SET_PDEATHSIG); elsewhere a thread looks every 0.2 s."""
+    import signal
+    import threading
+    try:
+        import ctypes
+        set_death_signal = ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL)) == 0
+    except (OSError, AttributeError):                    # no prctl: not Linux
+        set_death_signal = False
+    if os.getppid() != parent_pid:                       # the parent died before that
+        os._exit(1)
+    if set_death_signal:
+        return
+
+    def watch():
+        while os.getppid() == parent_pid:
+            time.sleep(0.2)
+        os._exit(1)
+    threading.Thread(target=watch, name="twinfield-parent-watch", daemon=True).start()
 
 
 def _spawn():

@@ -112,10 +112,12 @@ class Stage:
         of failing the unit. Such a product is stale again as soon as a missing input
         appears.
     apart : bool
-        The stage's code holds the GIL most of its time (pure-Python fitting loops,
-        matplotlib drawing): under the threads scheduler its units run in helper
-        processes, so they do not stall the numerical units running on the other
-        threads (see ``engine._Helpers``). Same products either way.
+        Under the threads scheduler, run the stage's units in helper processes (see
+        ``engine._Helpers``) rather than on the reducing process's threads. Units on
+        threads stall each other: pure-Python loops and matplotlib hold the GIL most of
+        their time, and numpy-heavy units hold it between their numpy calls. Every stage
+        of a reduction but ``inventory`` sets it (measured in docs/benchmarks.md). Same
+        products either way.
     """
     name: str
     version: str

@@ -52,5 +52,6 @@ def run(inputs, params: AverageParams) -> dict:
 
 STAGE = Stage(name="average", version="2", params=AverageParams,
               after=("extract", "reference"), granularity="exposure", plan=plan, run=run,
+              apart=True,
               doc="per exposure: bias-corrected V2, closure phases, referenced visibilities, "
                   "photometry, bootstrap errors")

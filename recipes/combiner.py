@@ -70,5 +70,5 @@ def run(inputs, params: CombinerParams) -> dict:
 
 
 STAGE = Stage(name="combiner", version="7", params=CombinerParams, after=("dark", "flat", "wavecal"),
-              granularity="setup", plan=plan, run=run,
+              granularity="setup", plan=plan, run=run, apart=True,
               doc="transmissions, contrasts, phase shifts, visibility-to-pixel matrix and inverse")

@@ -76,5 +76,5 @@ def run(inputs, params: DarkParams) -> dict:
 
 
 STAGE = Stage(name="dark", version="1", params=DarkParams, after=("inventory",),
-              granularity="setup", plan=plan, run=run,
+              granularity="setup", plan=plan, run=run, apart=True,
               doc="master dark, read-noise map, hot/dead pixel mask per channel and DIT")

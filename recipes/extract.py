@@ -74,6 +74,6 @@ def run(inputs, params: ExtractParams) -> dict:
 
 STAGE = Stage(name="extract", version="3", params=ExtractParams,
               after=("dark", "flat", "wavecal", "combiner"), granularity="exposure",
-              plan=plan, run=run,
+              plan=plan, run=run, apart=True,
               doc="per on-sky exposure: sky/dark subtraction, optimal extraction, P2VM -> "
                   "fluxes and coherent fluxes of the science and fringe-tracker channels")

@@ -76,5 +76,5 @@ def run(inputs, params: FlatParams) -> dict:
 
 
 STAGE = Stage(name="flat", version="3", params=FlatParams, after=("dark",),
-              granularity="setup", plan=plan, run=run,
+              granularity="setup", plan=plan, run=run, apart=True,
               doc="trace centres and profiles, pixel response, bad-pixel mask per set-up")

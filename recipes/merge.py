@@ -46,5 +46,5 @@ def run(inputs, params: MergeParams) -> dict:
 
 
 STAGE = Stage(name="merge", version="1", params=MergeParams, after=("calibrate",),
-              granularity="night", plan=plan, run=run, partial=True,
+              granularity="night", plan=plan, run=run, apart=True, partial=True,
               doc="one merged OIFITS v2 file per target and night")

@@ -52,6 +52,6 @@ def run(inputs, params: ReferenceParams) -> dict:
 
 
 STAGE = Stage(name="reference", version="3", params=ReferenceParams, after=("extract",),
-              granularity="exposure", plan=plan, run=run,
+              granularity="exposure", plan=plan, run=run, apart=True,
               doc="per exposure: FT phase, group delay and SNR; lock-loss and fringe-jump "
                   "selection; phase referencing with metrology; contrast loss")

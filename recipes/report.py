@@ -58,5 +58,5 @@ def run(inputs, params: ReportParams) -> dict:
 
 
 STAGE = Stage(name="report", version="4", params=ReportParams, after=("binary", "figure"),
-              granularity="night", plan=plan, run=run, partial=True,
+              granularity="night", plan=plan, run=run, apart=True, partial=True,
               doc="QC report: uv coverage, V2/closure phases with model, chi2 maps, astrometry")

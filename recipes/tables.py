@@ -41,5 +41,5 @@ def run(inputs, params: TablesParams) -> dict:
 
 
 STAGE = Stage(name="tables", version="1", params=TablesParams, after=("binary",),
-              granularity="night", plan=plan, run=run, partial=True,
+              granularity="night", plan=plan, run=run, apart=True, partial=True,
               doc="per-night astrometry tables (ECSV, FITS, CSV) for orbit fitters")

@@ -79,5 +79,5 @@ def run(inputs, params: WavecalParams) -> dict:
 
 
 STAGE = Stage(name="wavecal", version="8", params=WavecalParams, after=("dark", "flat"),
-              granularity="setup", plan=plan, run=run,
+              granularity="setup", plan=plan, run=run, apart=True,
               doc="effective wavelengths and bandwidths from delay scans, common grid")

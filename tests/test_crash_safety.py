@@ -9,6 +9,7 @@ import signal
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -43,6 +44,29 @@ def _units_done(log, offset):
         return len(re.findall(rb" INFO computed ", fh.read()))
 
 
+def _descendants(pid):
+    """Process ids below ``pid`` (Linux /proc; empty elsewhere)."""
+    out, todo = [], [pid]
+    while todo:
+        p = todo.pop()
+        for task in Path(f"/proc/{p}/task").glob("*"):
+            try:
+                kids = [int(c) for c in (task / "children").read_text().split()]
+            except OSError:
+                continue
+            out += kids
+            todo += kids
+    return out
+
+
+def _alive(pid):
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except (OSError, IndexError):
+        return False
+    return state != "Z"
+
+
 def _nothing_untrustworthy(work):
     """Every product file under its final name is complete and readable, and every
     product ``status`` calls current opens with all its datasets."""
@@ -59,30 +83,42 @@ def test_killed_reductions_then_finished_equal_a_clean_run(tmp_path_factory, tin
     night = night_path(tmp_path_factory, tiny_night)
     work = tmp_path / "work"
     rng = np.random.default_rng(8)             # seeded kill moments
-    kills, attempts = 0, 0
+    n_units = len(engine.status(clean))
+    kills, attempts, helpers_seen = 0, 0, 0
     while kills < N_KILLS and attempts < 2 * N_KILLS:
         attempts += 1
         work.mkdir(exist_ok=True)
         log = work / engine.LOG_FILE
         offset = log.stat().st_size if log.exists() else 0
+        left = (sum(r["state"] != "current" for r in engine.status(work))
+                if (work / engine.STATE_FILE).exists() else n_units)
         proc = subprocess.Popen(_reduce_cmd(night, work), stdout=subprocess.DEVNULL,
                                 stderr=subprocess.DEVNULL)
         try:
-            # Kill once this run has finished a random number (1-5) of the night's ~20
-            # units, a random fraction of a second later: the kills spread over the whole
-            # graph, while a product is computed or written.
+            # Kill once this run has finished a random number (1 to half of those left)
+            # of the night's units, a random fraction of a second later: the kills spread
+            # over the whole graph, while a product is computed or written.
             assert _wait_for(work / engine.LOCK_FILE, proc), "reduce never took the lock"
-            target = rng.integers(1, 6)
+            target = rng.integers(1, max(2, left // 2 + 1))
             while proc.poll() is None and _units_done(log, offset) < target:
                 time.sleep(0.02)
-            time.sleep(rng.uniform(0.0, 1.0))
+            time.sleep(rng.uniform(0.0, 0.3))
+            helpers = _descendants(proc.pid)
             if proc.poll() is None:
                 os.kill(proc.pid, signal.SIGKILL)
                 kills += 1
         finally:
             proc.wait()
+        # Its helper processes die with it: none goes on writing into the work
+        # directory beside the next run (Linux: the parent-death signal).
+        t0 = time.monotonic()
+        while any(map(_alive, helpers)) and time.monotonic() - t0 < 10:
+            time.sleep(0.05)
+        assert not any(map(_alive, helpers)), "a killed reduce left helper processes running"
+        helpers_seen += len(helpers)
         _nothing_untrustworthy(work)
     assert kills == N_KILLS
+    assert helpers_seen or not Path("/proc/self/task").exists()
 
     done = subprocess.run(_reduce_cmd(night, work), capture_output=True, text=True)
     assert done.returncode == 0, done.stdout + done.stderr
