@@ -287,10 +287,11 @@ class _Helpers:
 
     A pure-Python loop (an lmfit refinement) or a matplotlib drawing holds the GIL for
     most of its time, and a numpy-heavy unit between its numpy calls; on a thread each
-    stalls the others. Such a unit is sent whole (:func:`_execute`: read inputs, run, write the
-    product) to one of ``n`` spawned processes, made on first use; its thread waits
-    without holding the GIL. Where no process can be made (in a daemonic process, a dask
-    worker's) units run on their thread.
+    stalls the others. Such a unit is sent whole (:func:`_execute`: read inputs, run,
+    write the product) to one of ``n`` spawned processes, made on first use; its thread
+    waits without holding the GIL. The processes end with this one (even killed). Where
+    no process can be made (in a daemonic process, a dask worker's) units run on their
+    thread.
 
     A helper that dies (killed, or a crash in C) takes down the units it was running
     and the pool; each of them is run once more alone in a fresh process, so only the
@@ -365,21 +366,12 @@ def _main_is_importable() -> bool:
 
 
 def _die_with_parent(parent_pid: int) -> None:
-    """In a helper process: end it as soon as the reducing process ``parent_pid`` is gone
+    """In a helper process: end it once the reducing process ``parent_pid`` is gone
     (killed, say), so that no orphaned helper goes on computing and writing into the work
-    directory beside the run that takes it over. Linux: the kernel sends SIGKILL at the
-    parent's death (prctl PR_SET_PDEATHSIG); elsewhere a thread looks every 0.2 s."""
-    import signal
+    directory beside the run that takes it over. A thread looks every 0.2 s. (Linux's
+    parent-death signal would follow the thread that spawned the helper, not the
+    process.)"""
     import threading
-    try:
-        import ctypes
-        set_death_signal = ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL)) == 0
-    except (OSError, AttributeError):                    # no prctl: not Linux
-        set_death_signal = False
-    if os.getppid() != parent_pid:                       # the parent died before that
-        os._exit(1)
-    if set_death_signal:
-        return
 
     def watch():
         while os.getppid() == parent_pid:

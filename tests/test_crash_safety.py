@@ -109,8 +109,8 @@ def test_killed_reductions_then_finished_equal_a_clean_run(tmp_path_factory, tin
                 kills += 1
         finally:
             proc.wait()
-        # Its helper processes die with it: none goes on writing into the work
-        # directory beside the next run (Linux: the parent-death signal).
+        # Its helper processes end with it: none goes on writing into the work
+        # directory beside the next run.
         t0 = time.monotonic()
         while any(map(_alive, helpers)) and time.monotonic() - t0 < 10:
             time.sleep(0.05)
