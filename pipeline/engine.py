@@ -303,7 +303,6 @@ class _Helpers:
         self.lock = threading.Lock()
 
     def execute(self, spec: dict, upstream: dict) -> dict:
-        from concurrent.futures import ProcessPoolExecutor
         from concurrent.futures.process import BrokenProcessPool
         pool = self._pool()
         if pool is None:
@@ -316,8 +315,7 @@ class _Helpers:
                     self.pool = None                # the next units get a new pool
         log.warning("a helper process died running %s/%s or a unit beside it; running it "
                     "again alone", spec["stage"], spec["unit"].label)
-        with ProcessPoolExecutor(1, mp_context=_spawn(), initializer=_die_with_parent,
-                                 initargs=(os.getpid(),)) as alone:
+        with _helper_pool(1) as alone:
             try:
                 return alone.submit(_execute, spec, upstream).result()
             except BrokenProcessPool as exc:
@@ -325,7 +323,6 @@ class _Helpers:
 
     def _pool(self):
         import multiprocessing
-        from concurrent.futures import ProcessPoolExecutor
         with self.lock:
             if self.pool is None and not self.unavailable:
                 if multiprocessing.current_process().daemon:
@@ -335,9 +332,7 @@ class _Helpers:
                     log.info("helper processes not used: the main script has no "
                              "'if __name__ == \"__main__\":' guard")
                 else:
-                    self.pool = ProcessPoolExecutor(self.n, mp_context=_spawn(),
-                                                    initializer=_die_with_parent,
-                                                    initargs=(os.getpid(),))
+                    self.pool = _helper_pool(self.n)
             return self.pool
 
     def close(self) -> None:
@@ -363,6 +358,13 @@ def _main_is_importable() -> bool:
         return "__main__" in Path(path).read_text(errors="ignore")
     except OSError:
         return False
+
+
+def _helper_pool(n: int):
+    """``n`` spawned helper processes that end with this one."""
+    from concurrent.futures import ProcessPoolExecutor
+    return ProcessPoolExecutor(n, mp_context=_spawn(), initializer=_die_with_parent,
+                               initargs=(os.getpid(),))
 
 
 def _die_with_parent(parent_pid: int) -> None:

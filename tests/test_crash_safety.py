@@ -15,6 +15,7 @@ import numpy as np
 import pytest
 
 import pipeline.engine as engine
+from pipeline.bench import _children
 from pipeline.store import is_complete
 from robust_night import (astrometry_rows, clean_work, differing_products, night_path,
                           product_files, read_datasets, same_array)
@@ -48,14 +49,9 @@ def _descendants(pid):
     """Process ids below ``pid`` (Linux /proc; empty elsewhere)."""
     out, todo = [], [pid]
     while todo:
-        p = todo.pop()
-        for task in Path(f"/proc/{p}/task").glob("*"):
-            try:
-                kids = [int(c) for c in (task / "children").read_text().split()]
-            except OSError:
-                continue
-            out += kids
-            todo += kids
+        kids = _children(todo.pop())
+        out += kids
+        todo += kids
     return out
 
 
