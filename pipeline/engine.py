@@ -363,8 +363,38 @@ def _main_is_importable() -> bool:
 def _helper_pool(n: int):
     """``n`` spawned helper processes that end with this one."""
     from concurrent.futures import ProcessPoolExecutor
-    return ProcessPoolExecutor(n, mp_context=_spawn(), initializer=_die_with_parent,
+    return ProcessPoolExecutor(n, mp_context=_spawn(), initializer=_start_helper,
                                initargs=(os.getpid(),))
+
+
+def _start_helper(parent_pid: int) -> None:
+    """Initializer of every helper process."""
+    _die_with_parent(parent_pid)
+    _keep_freed_memory()
+
+
+# glibc mallopt(3) parameters
+_M_TRIM_THRESHOLD, _M_MMAP_MAX = -1, -4
+
+
+def _keep_freed_memory(trim_threshold: int = 2**30) -> bool:
+    """In a helper process: let glibc's malloc keep the memory numpy frees and hand it out
+    again, instead of mapping every large array afresh and unmapping it on free. Each
+    fresh page costs the kernel a fault and a zeroing, dearly on a virtual machine: on
+    the bench night this took a third to a half of the reduction's system time
+    (docs/benchmarks.md). No array is mapped on its own (``M_MMAP_MAX`` 0) and the heap is
+    given back to the system only when more than ``trim_threshold`` bytes are free at its
+    top, so a helper holds about its largest unit's peak. Returns False where the C
+    library is not glibc (nothing done)."""
+    import ctypes
+    import ctypes.util
+    try:
+        mallopt = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").mallopt
+    except (OSError, AttributeError):
+        return False
+    mallopt.argtypes, mallopt.restype = [ctypes.c_int, ctypes.c_int], ctypes.c_int
+    trim = min(trim_threshold, 2**31 - 1)           # mallopt takes an int
+    return bool(mallopt(_M_MMAP_MAX, 0)) and bool(mallopt(_M_TRIM_THRESHOLD, trim))
 
 
 def _die_with_parent(parent_pid: int) -> None:

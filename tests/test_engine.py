@@ -5,6 +5,7 @@ recovery from a killed run."""
 import dataclasses
 import json
 import os
+import platform
 import re
 import signal
 import subprocess
@@ -278,6 +279,36 @@ def test_a_dying_helper_process_fails_its_unit_only(night, tmp_path):
     record = [r for r in status(tmp_path / "work", stages=stages)
               if r["stage"] == "apartcrash" and r["name"] == crashed[0][1]]
     assert record and record[0]["state"] == "failed"
+
+
+def _faults_of_reallocating(n: int = 8, mib: int = 64) -> int:
+    """Minor page faults of this process while it allocates, fills and frees an
+    array of ``mib`` MiB ``n`` times (after a first time)."""
+    import resource
+    a = np.ones(mib * 2**17)
+    del a
+    before = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+    for _ in range(n):
+        a = np.ones(mib * 2**17)
+        del a
+    return resource.getrusage(resource.RUSAGE_SELF).ru_minflt - before
+
+
+@pytest.mark.skipif(platform.libc_ver()[0] != "glibc", reason="glibc's mallopt(3) only")
+def test_helpers_keep_freed_memory_for_the_next_array():
+    """A helper process hands a freed large array's memory out again: no page is faulted
+    in afresh. A plain spawned process maps every array above glibc's mmap threshold
+    (at most 32 MiB, mallopt(3)) afresh and faults in each of its pages, at least one
+    fault per 2-MiB huge page."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+    from pipeline.engine import _helper_pool
+    with ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("spawn")) as plain:
+        plain_faults = plain.submit(_faults_of_reallocating).result(timeout=120)
+    with _helper_pool(1) as helper:
+        helper_faults = helper.submit(_faults_of_reallocating).result(timeout=120)
+    assert plain_faults >= 8 * 64 // 2, plain_faults
+    assert helper_faults < 0.05 * plain_faults, (helper_faults, plain_faults)
 
 
 def test_tiny_night_darks_against_truth(tiny_night, tmp_path):
