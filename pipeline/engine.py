@@ -373,28 +373,28 @@ def _start_helper(parent_pid: int) -> None:
     _keep_freed_memory()
 
 
-# glibc mallopt(3) parameters
+# glibc mallopt(3) parameters; the heap is trimmed above this much free at its top
 _M_TRIM_THRESHOLD, _M_MMAP_MAX = -1, -4
+_HELPER_TRIM_BYTES = 2**30
 
 
-def _keep_freed_memory(trim_threshold: int = 2**30) -> bool:
+def _keep_freed_memory() -> bool:
     """In a helper process: let glibc's malloc keep the memory numpy frees and hand it out
     again, instead of mapping every large array afresh and unmapping it on free. Each
     fresh page costs the kernel a fault and a zeroing, dearly on a virtual machine: on
     the bench night this took a third to a half of the reduction's system time
     (docs/benchmarks.md). No array is mapped on its own (``M_MMAP_MAX`` 0) and the heap is
-    given back to the system only when more than ``trim_threshold`` bytes are free at its
-    top, so a helper holds about its largest unit's peak. Returns False where the C
-    library is not glibc (nothing done)."""
+    given back to the system only when more than 1 GiB is free at its top, so a helper
+    holds about its largest unit's peak. Returns False where the C library has no
+    ``mallopt`` or refuses it (nothing done)."""
     import ctypes
-    import ctypes.util
     try:
-        mallopt = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").mallopt
+        mallopt = ctypes.CDLL(None).mallopt        # the C library the process runs on
     except (OSError, AttributeError):
         return False
     mallopt.argtypes, mallopt.restype = [ctypes.c_int, ctypes.c_int], ctypes.c_int
-    trim = min(trim_threshold, 2**31 - 1)           # mallopt takes an int
-    return bool(mallopt(_M_MMAP_MAX, 0)) and bool(mallopt(_M_TRIM_THRESHOLD, trim))
+    return bool(mallopt(_M_MMAP_MAX, 0)) and bool(mallopt(_M_TRIM_THRESHOLD,
+                                                          _HELPER_TRIM_BYTES))
 
 
 def _die_with_parent(parent_pid: int) -> None:

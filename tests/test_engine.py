@@ -300,10 +300,9 @@ def test_helpers_keep_freed_memory_for_the_next_array():
     in afresh. A plain spawned process maps every array above glibc's mmap threshold
     (at most 32 MiB, mallopt(3)) afresh and faults in each of its pages, at least one
     fault per 2-MiB huge page."""
-    import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
-    from pipeline.engine import _helper_pool
-    with ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("spawn")) as plain:
+    from pipeline.engine import _helper_pool, _spawn
+    with ProcessPoolExecutor(1, mp_context=_spawn()) as plain:
         plain_faults = plain.submit(_faults_of_reallocating).result(timeout=120)
     with _helper_pool(1) as helper:
         helper_faults = helper.submit(_faults_of_reallocating).result(timeout=120)
