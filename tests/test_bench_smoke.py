@@ -1,7 +1,9 @@
 # SPDX-License-Identifier: BSD-3-Clause
 """Smoke tests of the `make bench` helpers on tiny data (no timing assertions)."""
 
-import os
+import json
+import subprocess
+import sys
 import tomllib
 from pathlib import Path
 
@@ -20,15 +22,27 @@ def test_scaled_scenario_multiplies_on_sky_frames_only():
     assert big["targets"] == orig["targets"]
 
 
+_RSS_PROBE = """
+import json, numpy as np
+from pathlib import Path
+from pipeline import bench
+blob = np.ones(20_000_000 // 8)                  # 20 MB resident while we look
+rss = bench.tree_rss_bytes(__import__("os").getpid())
+status = Path("/proc/self/status").read_text()
+vm_rss = int(next(l for l in status.splitlines() if l.startswith("VmRSS")).split()[1]) * 1024
+print(json.dumps([rss, vm_rss, blob.nbytes]))
+"""
+
+
 def test_tree_rss_matches_proc_status():
-    blob = np.ones(20_000_000 // 8)                  # 20 MB resident while we look
-    rss = bench.tree_rss_bytes(os.getpid())
-    status = Path("/proc/self/status").read_text()
-    vm_rss = int(next(l for l in status.splitlines() if l.startswith("VmRSS")).split()[1]) * 1024
-    # independent source: the kernel's VmRSS of this process (no children here);
-    # 5 % covers pages touched between the two reads
+    # A fresh interpreter, so that no child process (a test's leftover pool) adds to
+    # the tree's memory. Independent source: the kernel's VmRSS of that process;
+    # 5 % covers pages touched between the two reads.
+    out = subprocess.run([sys.executable, "-c", _RSS_PROBE], capture_output=True,
+                         text=True, check=True, cwd=Path(__file__).parents[1])
+    rss, vm_rss, blob = json.loads(out.stdout)
     assert abs(rss - vm_rss) <= 0.05 * vm_rss
-    assert rss > blob.nbytes
+    assert rss > blob
 
 
 def test_nominal_p2vm_inverts_the_v2pm(instrument):
