@@ -92,6 +92,9 @@ _LST_LINEAR_TOL = 1e-9      # rad: 0.2 mas, far below any fringe-phase or delay 
 def _local_sidereal_rad(time, longitude_deg: float) -> np.ndarray:
     import astropy.units as u
 
+    from .earth_orientation import use_cached_table
+    use_cached_table()                  # UT1 - UTC without parsing astropy's text files
+
     def exact(t):
         return np.asarray(t.sidereal_time("apparent", longitude=longitude_deg * u.deg)
                           .to_value(u.rad))

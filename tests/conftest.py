@@ -19,6 +19,20 @@ def _no_malloc_trim_leak():
         os.environ.pop("MALLOC_TRIM_THRESHOLD_", None)
 
 
+@pytest.fixture(scope="session", autouse=True)
+def _session_cache_dir(tmp_path_factory):
+    """The suite keeps astropy's Earth-orientation table (pipeline.earth_orientation) in a
+    directory of its own, not in the user's cache; processes it starts inherit it."""
+    import os
+    before = os.environ.get("TWINFIELD_CACHE_DIR")
+    os.environ["TWINFIELD_CACHE_DIR"] = str(tmp_path_factory.mktemp("cache"))
+    yield
+    if before is None:
+        os.environ.pop("TWINFIELD_CACHE_DIR", None)
+    else:
+        os.environ["TWINFIELD_CACHE_DIR"] = before
+
+
 @pytest.fixture
 def rng():
     """A seeded generator; every test that draws noise uses it."""
