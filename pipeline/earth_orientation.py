@@ -21,6 +21,7 @@ written: astropy then reads its files as usual.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import hashlib
 import os
@@ -75,16 +76,22 @@ def use_cached_table() -> Path | None:
         table = iers.IERS_Auto(kept, copy=False)
     except Exception:                   # missing or unreadable: a cache never stops the work
         table = iers.IERS_Auto.open()   # astropy parses its files, as without this module
-        try:
-            path.parent.mkdir(parents=True, exist_ok=True)
-            tmp = path.with_name(f".{path.name}.{os.getpid()}-{uuid.uuid4().hex[:8]}.tmp")
-            try:
-                table.write(tmp, path="earth_orientation", serialize_meta=True, format="hdf5")
-                os.replace(tmp, path)
-            finally:
-                tmp.unlink(missing_ok=True)
-        except OSError:
-            return None                 # a read-only home: astropy's own table stands
-        return path
+        return path if _keep(table, path) else None
     iers.IERS_Auto.iers_table = table   # what IERS_Auto.open() would have made
     return path
+
+
+def _keep(table, path: Path) -> bool:
+    """Write ``table`` to ``path`` under a temporary name, then rename it (a reader never
+    sees half a file); False where it cannot be written (a read-only home)."""
+    tmp = path.with_name(f".{path.name}.{os.getpid()}-{uuid.uuid4().hex[:8]}.tmp")
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        table.write(tmp, path="earth_orientation", serialize_meta=True, format="hdf5")
+        os.replace(tmp, path)
+        return True
+    except OSError:
+        return False
+    finally:
+        with contextlib.suppress(OSError):      # gone after the rename, or never made
+            tmp.unlink(missing_ok=True)

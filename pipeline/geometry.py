@@ -12,6 +12,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from .earth_orientation import use_cached_table
+
 __all__ = ["enu_to_equatorial", "uvw_from_enu", "hour_angle_rad", "parallactic_angle_rad"]
 
 
@@ -92,7 +94,6 @@ _LST_LINEAR_TOL = 1e-9      # rad: 0.2 mas, far below any fringe-phase or delay 
 def _local_sidereal_rad(time, longitude_deg: float) -> np.ndarray:
     import astropy.units as u
 
-    from .earth_orientation import use_cached_table
     use_cached_table()                  # UT1 - UTC without parsing astropy's text files
 
     def exact(t):

@@ -13,7 +13,7 @@ import pytest
 ROOT = Path(__file__).parents[1]
 
 _PROBE = """
-import json, sys, numpy as np
+import json, numpy as np
 import pipeline
 from astropy.time import Time
 from pipeline.earth_orientation import use_cached_table
@@ -25,14 +25,9 @@ ha = hour_angle_rad(t, ra_deg=83.6, longitude_deg=-70.4)
 print(json.dumps({"entry": entry and str(entry), "ha": ha.tolist()}))
 """
 
-_REFERENCE = """
-import json, numpy as np
-import pipeline
-from astropy.time import Time
-from pipeline.geometry import hour_angle_rad
-t = Time(np.array([51544.5, 58849.25, 61148.4, 61200.9]), format="mjd", scale="utc")
-print(json.dumps({"ha": hour_angle_rad(t, ra_deg=83.6, longitude_deg=-70.4).tolist()}))
-"""
+_ENTRY_ONLY = ("import json, pipeline\n"
+               "from pipeline.earth_orientation import use_cached_table\n"
+               "print(json.dumps({'entry': use_cached_table()}))")
 
 
 def _run(code, cache, cwd=ROOT):
@@ -43,20 +38,22 @@ def _run(code, cache, cwd=ROOT):
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
-def _reference(tmp_path):
+@pytest.fixture(scope="module")
+def reference(tmp_path_factory):
     """Hour angles with astropy reading its own files (the cache taken out)."""
     code = ("import pipeline.earth_orientation as eo\n"
-            "eo.use_cached_table = lambda: None\n" + _REFERENCE)
-    return _run(code, tmp_path / "unused")["ha"]
+            "eo.use_cached_table = lambda: None\n"
+            "import pipeline.geometry as g\n"
+            "g.use_cached_table = eo.use_cached_table\n" + _PROBE)
+    return _run(code, tmp_path_factory.mktemp("reference") / "unused")["ha"]
 
 
-def test_kept_table_gives_astropy_sidereal_times_bit_for_bit(tmp_path):
+def test_kept_table_gives_astropy_sidereal_times_bit_for_bit(tmp_path, reference):
     cache = tmp_path / "cache"
     first = _run(_PROBE, cache)                 # parses astropy's files, keeps the table
     assert first["entry"] and Path(first["entry"]).parent == cache
     second = _run(_PROBE, cache)                # reads the kept table
     assert second["entry"] == first["entry"]
-    reference = _reference(tmp_path)
     assert first["ha"] == reference
     assert second["ha"] == reference            # exact: the same UT1 - UTC, same formulas
 
@@ -93,21 +90,21 @@ print(json.dumps({"bad": bad, "meta": meta, "n": [len(own), len(kept)],
     assert out["meta"]
 
 
-def test_a_corrupt_entry_is_replaced_and_the_work_goes_on(tmp_path):
+def test_a_corrupt_entry_is_replaced_and_the_work_goes_on(tmp_path, reference):
     cache = tmp_path / "cache"
     entry = Path(_run(_PROBE, cache)["entry"])
     entry.write_bytes(b"not an HDF5 file")
     again = _run(_PROBE, cache)
-    assert again["ha"] == _reference(tmp_path)
+    assert again["ha"] == reference
     assert entry.stat().st_size > 1_000_000     # written again from astropy's files
 
 
-def test_an_unwritable_cache_leaves_astropy_alone(tmp_path):
+def test_an_unwritable_cache_leaves_astropy_alone(tmp_path, reference):
     blocker = tmp_path / "file"
     blocker.write_text("a file where the cache directory would be")
     out = _run(_PROBE, blocker / "cache")
     assert out["entry"] is None
-    assert out["ha"] == _reference(tmp_path)
+    assert out["ha"] == reference
 
 
 @pytest.mark.parametrize("setting", ["auto_download", "local_file"])
@@ -115,17 +112,13 @@ def test_nothing_kept_where_astropy_would_read_other_files(tmp_path, setting):
     cache = tmp_path / "cache"
     cwd = tmp_path / "run"
     cwd.mkdir()
-    code = _PROBE
+    code = _ENTRY_ONLY
     if setting == "auto_download":
         # only the decision is checked: no table is read (no network here)
         code = ("import pipeline\nfrom astropy.utils import iers\n"
-                "iers.conf.auto_download = True\n"
-                "from pipeline.earth_orientation import use_cached_table\n"
-                "import json; print(json.dumps({'entry': use_cached_table()}))")
+                "iers.conf.auto_download = True\n" + code)    # after pipeline turns it off
     else:
         (cwd / "finals2000A.all").write_text("")   # astropy would read this one instead
-        code = ("import pipeline\nfrom pipeline.earth_orientation import use_cached_table\n"
-                "import json; print(json.dumps({'entry': use_cached_table()}))")
     out = _run(code, cache, cwd=cwd)
     assert out["entry"] is None
     assert not cache.exists()
